@@ -1,0 +1,54 @@
+"""One error type per layer, each carrying *where* (file, table, key, line, column, tag)
+and *what to do* (a hint).  The CLI prints them as one ``error: ...`` line, exit code 2."""
+
+from __future__ import annotations
+
+
+class GrayboxError(Exception):
+    """A user error: bad config, model, data or settings.  Never an internal bug."""
+
+    layer = "graybox"
+
+    def __init__(self, message: str, *, where: str | None = None, hint: str | None = None):
+        self.message = message
+        self.where = where
+        self.hint = hint
+        super().__init__(self.render())
+
+    def render(self) -> str:
+        text = f"{self.where}: {self.message}" if self.where else self.message
+        if self.hint:
+            text += f"\n  hint: {self.hint}"
+        return text
+
+
+class ConfigError(GrayboxError):
+    layer = "config"
+
+
+class ModelError(GrayboxError):
+    layer = "model"
+
+
+class DataError(GrayboxError):
+    layer = "data"
+
+
+class SimulationError(GrayboxError):
+    layer = "simulate"
+
+
+class FitError(GrayboxError):
+    layer = "estimate"
+
+
+class SampleError(GrayboxError):
+    layer = "posterior"
+
+
+class RunError(GrayboxError):
+    layer = "runs"
+
+
+class BatchError(GrayboxError):
+    layer = "batch"
