@@ -1,0 +1,221 @@
+"""Small toolkit for validating TOML tables with every error located.
+
+A :class:`Table` wraps one TOML table with its dotted path and the file it came from.  Its
+accessors check types, reject unknown keys with a "did you mean" and produce locations such
+as ``configs/vessel.toml:14 [parameters.UA] key 'guess'`` (the line is found by scanning the
+file's text for the table header and key; tomllib keeps no positions).
+"""
+
+from __future__ import annotations
+
+import difflib
+import math
+import re
+import tomllib
+from dataclasses import dataclass
+from functools import lru_cache
+from pathlib import Path
+from typing import Any, Iterable, Iterator
+
+from graybox.errors import ConfigError
+
+_MISSING = object()
+
+
+@lru_cache(maxsize=32)
+def _file_lines(path: str) -> tuple[str, ...]:
+    try:
+        return tuple(Path(path).read_text(encoding="utf-8").splitlines())
+    except OSError:
+        return ()
+
+
+def _find_line(path: Path | None, table: tuple[str, ...], key: str | None) -> int | None:
+    """Best-effort 1-based line of ``key`` in ``[table]`` (or of the header)."""
+    if path is None:
+        return None
+    lines = _file_lines(str(path))
+    if not lines:
+        return None
+    header_re = re.compile(r"^\s*\[\[?\s*([^\]]+?)\s*\]\]?\s*(#.*)?$")
+    current: tuple[str, ...] = ()
+    header_line = None
+    best = None
+    dotted = ".".join(table)
+    for i, line in enumerate(lines, start=1):
+        m = header_re.match(line)
+        if m:
+            current = tuple(p.strip().strip('"') for p in m.group(1).split("."))
+            if current == table:
+                header_line = i
+            continue
+        if key is None:
+            continue
+        stripped = line.strip()
+        # key = ... inside [table], or table.key = ..., or inline table on the parent
+        if current == table and re.match(rf'^"?{re.escape(key)}"?\s*=', stripped):
+            return i
+        if re.match(rf'^"?{re.escape(dotted)}\.{re.escape(key)}"?\s*=', stripped) or (
+            table and current == table[:-1] and re.match(rf'^"?{re.escape(table[-1])}"?\s*=', stripped)
+            and re.search(rf'\b{re.escape(key)}\s*=', stripped)
+        ):
+            best = best or i
+    return best or header_line
+
+
+def load_toml(path: Path) -> dict:
+    """Read a TOML file; a syntax error becomes a ConfigError with file and line."""
+    try:
+        text = path.read_bytes()
+    except FileNotFoundError:
+        raise ConfigError(f"config file not found: {path}") from None
+    except OSError as exc:
+        raise ConfigError(f"cannot read config file {path}: {exc.strerror}") from None
+    try:
+        return tomllib.loads(text.decode("utf-8"))
+    except UnicodeDecodeError as exc:
+        raise ConfigError(f"{path}: not UTF-8 text (byte {exc.start})", hint="save the config as UTF-8") from None
+    except tomllib.TOMLDecodeError as exc:
+        msg = str(exc)
+        hint = None
+        if "overwrite" in msg.lower() or "duplicate" in msg.lower():
+            hint = "a key or table is given twice; a state has exactly one rate equation"
+        raise ConfigError(f"{path}: TOML syntax error: {msg}", hint=hint) from None
+
+
+@dataclass(frozen=True)
+class Table:
+    data: dict
+    path: tuple[str, ...] = ()
+    file: Path | None = None
+
+    # -- locations ---------------------------------------------------------------------------
+    def where(self, key: str | None = None) -> str:
+        line = _find_line(self.file, self.path, key)
+        loc = str(self.file) if self.file else "<config>"
+        if line:
+            loc += f":{line}"
+        if self.path:
+            loc += f" [{'.'.join(self.path)}]"
+        if key is not None:
+            loc += f" key '{key}'"
+        return loc
+
+    def error(self, key: str | None, message: str, hint: str | None = None) -> ConfigError:
+        return ConfigError(message, where=self.where(key), hint=hint)
+
+    # -- structure ---------------------------------------------------------------------------
+    def keys(self) -> list[str]:
+        return list(self.data)
+
+    def __contains__(self, key: str) -> bool:
+        return key in self.data
+
+    def check_keys(self, allowed: Iterable[str]) -> None:
+        allowed = list(allowed)
+        for key in self.data:
+            if key not in allowed:
+                close = difflib.get_close_matches(key, allowed, n=1, cutoff=0.6)
+                hint = f"did you mean '{close[0]}'?" if close else f"allowed keys: {', '.join(allowed)}"
+                raise self.error(key, "unknown key", hint=hint)
+
+    def sub(self, key: str, *, required: bool = False) -> "Table":
+        value = self.data.get(key, _MISSING)
+        if value is _MISSING:
+            if required:
+                raise self.error(key, "missing table", hint=f"add a [{'.'.join((*self.path, key))}] table")
+            return Table({}, (*self.path, key), self.file)
+        if not isinstance(value, dict):
+            raise self.error(key, f"must be a table, got {type(value).__name__}")
+        return Table(value, (*self.path, key), self.file)
+
+    def items(self) -> Iterator[tuple[str, Any]]:
+        return iter(self.data.items())
+
+    # -- typed accessors ---------------------------------------------------------------------
+    def get(self, key: str, default: Any = _MISSING):
+        if key not in self.data:
+            if default is _MISSING:
+                raise self.error(key, "missing required key")
+            return default
+        return self.data[key]
+
+    def string(self, key: str, default: Any = _MISSING, choices: Iterable[str] | None = None) -> str:
+        value = self.get(key, default)
+        if value is default and default is not _MISSING:
+            return value
+        if not isinstance(value, str):
+            raise self.error(key, f"must be text, got {value!r}")
+        if choices is not None:
+            choices = list(choices)
+            if value not in choices:
+                close = difflib.get_close_matches(value, choices, n=1)
+                hint = (f"did you mean '{close[0]}'? " if close else "") + f"choose one of: {', '.join(choices)}"
+                raise self.error(key, f"'{value}' is not a valid choice", hint=hint)
+        return value
+
+    def number(self, key: str, default: Any = _MISSING, *, positive: bool = False, finite: bool = True,
+               integer: bool = False, minimum: float | None = None) -> float:
+        value = self.get(key, default)
+        if value is default and default is not _MISSING:
+            return value
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            raise self.error(key, f"must be a number, got {value!r}")
+        if integer and not float(value).is_integer():
+            raise self.error(key, f"must be a whole number, got {value!r}")
+        if finite and not math.isfinite(value):
+            raise self.error(key, f"must be finite, got {value!r}")
+        if positive and not value > 0:
+            raise self.error(key, f"must be positive, got {value!r}")
+        if minimum is not None and value < minimum:
+            raise self.error(key, f"must be at least {minimum}, got {value!r}")
+        return int(value) if integer else float(value)
+
+    def boolean(self, key: str, default: Any = _MISSING) -> bool:
+        value = self.get(key, default)
+        if not isinstance(value, bool):
+            raise self.error(key, f"must be true or false, got {value!r}")
+        return value
+
+    def string_list(self, key: str, default: Any = _MISSING) -> list[str]:
+        value = self.get(key, default)
+        if value is default and default is not _MISSING:
+            return value
+        if isinstance(value, str):
+            return [value]
+        if not isinstance(value, list) or not all(isinstance(v, str) for v in value):
+            raise self.error(key, f"must be text or a list of text, got {value!r}")
+        return list(value)
+
+    def pair(self, key: str, default: Any = _MISSING) -> tuple[float, float]:
+        value = self.get(key, default)
+        if value is default and default is not _MISSING:
+            return value
+        if (not isinstance(value, list) or len(value) != 2
+                or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in value)):
+            raise self.error(key, f"must be a pair of numbers [low, high], got {value!r}")
+        lo, hi = float(value[0]), float(value[1])
+        if not lo < hi:
+            raise self.error(key, f"low must be below high, got [{lo}, {hi}]")
+        return lo, hi
+
+
+def parse_duration(text: str | float | int, where: str) -> float:
+    """A duration in seconds from a number (seconds) or text like '15 min', '2 h', '30 s'."""
+    if isinstance(text, (int, float)) and not isinstance(text, bool):
+        if text <= 0:
+            raise ConfigError(f"a duration must be positive, got {text}", where=where)
+        return float(text)
+    if not isinstance(text, str):
+        raise ConfigError(f"a duration must be a number of seconds or text like '15 min', got {text!r}", where=where)
+    from graybox.model.units import registry
+
+    ureg = registry()
+    try:
+        q = ureg.Quantity(text)
+        seconds = float(q.to("s").magnitude)
+    except Exception:  # noqa: BLE001 - pint raises many kinds; all mean "not a duration"
+        raise ConfigError(f"'{text}' is not a duration", where=where, hint="write e.g. '30 s', '15 min', '2 h', '1 day'") from None
+    if seconds <= 0:
+        raise ConfigError(f"a duration must be positive, got '{text}'", where=where)
+    return seconds

@@ -1,0 +1,133 @@
+"""The integration plan of one record for one model: knots, inputs on them, observations.
+
+Within a segment the knots are the union of every input sample time and every observation
+time.  Between two knots the inputs are held at the value of the left knot (the default:
+the historian's last value holds) or linear from left to right, so the integrator is
+restarted at every input change and no input jump is ever smeared over a step.  Outputs are
+evaluated only at their own observation times, never interpolated.
+
+Initial states (per segment, per state; the spec says which):
+
+* ``measured`` (the default for a state measured directly): the first valid observation of
+  that state in the segment.  The segment starts at that observation; the observation
+  itself is used up as the initial value and not compared; observations before it are not
+  compared either;
+* ``steady`` (the default otherwise): the steady state at the segment's first inputs;
+* a number: given;
+* ``estimate``: a free parameter per segment, estimated with the others.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from graybox.data.record import HOLD_LINEAR, Record
+from graybox.errors import DataError, SimulationError
+from graybox.model.spec import INITIAL_ESTIMATE, INITIAL_MEASURED, ModelSpec
+
+REASON_INITIAL = "used as the initial state"
+REASON_BEFORE = "before the segment's initial state"
+REASON_OUTSIDE = "outside every segment"
+
+
+@dataclass(frozen=True)
+class SegmentPlan:
+    index: int
+    t: np.ndarray  # knots, seconds
+    u: np.ndarray  # (n_knots, n_u) input values at the knots
+    obs_knot: dict[str, np.ndarray]  # output -> knot index of each compared observation
+    obs_index: dict[str, np.ndarray]  # output -> index into the OutputSeries arrays
+    x0_measured: dict[str, float]  # state -> first measured value
+
+    @property
+    def n_knots(self) -> int:
+        return int(self.t.size)
+
+    def knot_has_obs(self) -> np.ndarray:
+        flag = np.zeros(self.t.size, bool)
+        for k in self.obs_knot.values():
+            flag[k] = True
+        return flag
+
+
+@dataclass(frozen=True)
+class Timeline:
+    record: Record
+    segments: tuple[SegmentPlan, ...]
+    linear: np.ndarray  # (n_u,) bool: input interpolated linearly
+    used: dict[str, np.ndarray]  # output -> bool mask over its observations: compared in the fit
+    excluded: dict[str, dict[str, int]] = field(default_factory=dict)  # output -> reason -> count
+    estimated_states: tuple[str, ...] = ()
+
+    @property
+    def n_obs(self) -> int:
+        return int(sum(m.sum() for m in self.used.values()))
+
+    def n_obs_of(self, output: str) -> int:
+        return int(self.used[output].sum())
+
+
+def plan(spec: ModelSpec, record: Record) -> Timeline:
+    """The integration plan; raises DataError when the record cannot feed the model."""
+    missing_in = [u for u in spec.input_names if u not in record.inputs]
+    missing_out = [o for o in spec.output_names if o not in record.outputs]
+    if missing_in or missing_out:
+        names = ", ".join(missing_in + missing_out)
+        raise DataError(f"record '{record.name}' has no data for {names}",
+                        hint="map every model input and measured output to a column in the data table")
+    linear = np.array([record.inputs[u].hold == HOLD_LINEAR for u in spec.input_names], bool)
+    used = {o: np.zeros(record.outputs[o].t.size, bool) for o in spec.output_names}
+    excluded: dict[str, dict[str, int]] = {o: {} for o in spec.output_names}
+    measured_init = {s.name: o.name for s in spec.states if s.initial == INITIAL_MEASURED
+                     for o in spec.outputs if o.state == s.name}
+    segments = []
+    for si, seg in enumerate(record.segments):
+        t0 = seg.t_start
+        x0m: dict[str, float] = {}
+        init_obs: dict[str, int] = {}
+        for state, out in measured_init.items():
+            series = record.outputs[out]
+            ok = np.flatnonzero(series.mask & seg.contains(series.t))
+            if ok.size == 0:
+                raise DataError(f"record '{record.name}', segment {si + 1}: no valid measurement of '{out}' to start "
+                                f"state '{state}' from", hint="use initial = \"steady\" or \"estimate\" for that state")
+            init_obs[out] = int(ok[0])
+            x0m[state] = float(series.values[ok[0]])
+            t0 = max(t0, float(series.t[ok[0]]))
+        knots = [np.array([t0, seg.t_end])]
+        for u in spec.input_names:
+            ts = record.inputs[u].t
+            knots.append(ts[(ts >= t0) & (ts <= seg.t_end)])
+        obs_sel = {}
+        for o in spec.output_names:
+            series = record.outputs[o]
+            inside = series.mask & seg.contains(series.t)
+            before = inside & (series.t < t0)
+            if before.any():
+                excluded[o][REASON_BEFORE] = excluded[o].get(REASON_BEFORE, 0) + int(before.sum())
+            sel = inside & (series.t >= t0)
+            if o in init_obs:
+                sel[init_obs[o]] = False
+                excluded[o][REASON_INITIAL] = excluded[o].get(REASON_INITIAL, 0) + 1
+            obs_sel[o] = np.flatnonzero(sel)
+            used[o][obs_sel[o]] = True
+            knots.append(series.t[obs_sel[o]])
+        t = np.unique(np.concatenate(knots))
+        u_vals = np.column_stack([record.inputs[u].at(t) for u in spec.input_names]) if spec.inputs \
+            else np.zeros((t.size, 0))
+        obs_knot = {o: np.searchsorted(t, record.outputs[o].t[idx]) for o, idx in obs_sel.items()}
+        segments.append(SegmentPlan(si, t, u_vals, obs_knot, obs_sel, x0m))
+    for o in spec.output_names:
+        series = record.outputs[o]
+        outside = series.mask & ~np.any([s.contains(series.t) for s in record.segments], axis=0)
+        if outside.any():
+            excluded[o][REASON_OUTSIDE] = int(outside.sum())
+        if not used[o].any():
+            raise DataError(f"record '{record.name}': output '{o}' has no valid observation to compare",
+                            hint="check its quality masks, valid range and the selected time windows")
+    if not np.all(np.isfinite(np.concatenate([s.u.ravel() for s in segments]))):
+        raise SimulationError(f"record '{record.name}': an input has no value at some knot")
+    est = tuple(s.name for s in spec.states if s.initial == INITIAL_ESTIMATE)
+    return Timeline(record, tuple(segments), linear, used, excluded, est)
