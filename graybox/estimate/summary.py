@@ -1,0 +1,49 @@
+"""A readable plain-text summary of a least-squares fit."""
+
+from __future__ import annotations
+
+
+def _fmt(v: float) -> str:
+    if v != v:  # NaN
+        return "n/a"
+    return f"{v:.6g}"
+
+
+def fit_summary(res) -> str:
+    lines = []
+    status = "converged" if res.converged else "NOT CONVERGED"
+    lines.append(f"least squares: {status} ({res.message}); {res.n_obs} observations, {res.n_free} free values, "
+                 f"{res.nfev} evaluations")
+    head = f"{'parameter':<22} {'estimate':>13} {'std. error':>12} {'95% interval':>29}  {'units':<10} note"
+    lines += ["", head, "-" * len(head)]
+    for name, p in res.parameters.items():
+        if p.fixed:
+            note = "fixed"
+            interval = ""
+            se = ""
+        else:
+            note = f"at {p.at_bound} bound, one-sided" if p.at_bound else ""
+            rel = abs(p.stderr / p.estimate) if p.estimate else float("inf")
+            if not p.at_bound and rel > 0.5:
+                note = "poorly determined (std. error > 50%)"
+            interval = f"[{_fmt(p.ci95[0])}, {_fmt(p.ci95[1])}]"
+            se = _fmt(p.stderr)
+        lines.append(f"{name:<22} {_fmt(p.estimate):>13} {se:>12} {interval:>29}  {p.units:<10} {note}")
+    lines += ["", f"{'output':<22} {'sigma':>13} {'':>12} {'observations':>12}"]
+    for o, s in res.sigmas.items():
+        how = "estimated" if res.sigma_estimated[o] else "given"
+        lines.append(f"{o:<22} {_fmt(s):>13} {how:>12} {res.n_obs_per_output[o]:>12}")
+    lines += ["", f"SSE {_fmt(res.sse)}   log-likelihood {_fmt(res.loglik)}   AIC {_fmt(res.aic)}   "
+                  f"BIC {_fmt(res.bic)}   Jacobian rank {res.rank}/{res.n_free}, condition {_fmt(res.condition)}"]
+    strong = []
+    names = res.names
+    for i in range(len(names)):
+        for j in range(i + 1, len(names)):
+            c = res.correlation[i, j]
+            if c == c and abs(c) > 0.95:
+                strong.append(f"{names[i]} ~ {names[j]}: {c:+.3f}")
+    if strong:
+        lines.append("strong correlations (|r| > 0.95): " + "; ".join(strong))
+    for w in res.warnings:
+        lines.append(f"warning: {w}")
+    return "\n".join(lines)
