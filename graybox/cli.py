@@ -1,0 +1,95 @@
+"""Command line: parses arguments and calls the job functions in graybox.workflow.
+
+Exit codes: 0 success; 2 user error (config, model, data, settings), printed as one
+``error: ...`` message without a traceback; 1 internal failure (a bug: please report it).
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import traceback
+
+from graybox import __version__
+from graybox.errors import GrayboxError
+
+EXIT_OK, EXIT_INTERNAL, EXIT_USER = 0, 1, 2
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message):  # argparse's own usage errors are user errors too
+        self.print_usage(sys.stderr)
+        print(f"error: {message}", file=sys.stderr)
+        raise SystemExit(EXIT_USER)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = _Parser(prog="graybox", description="Gray-box parameter estimation for first-principles process models.")
+    p.add_argument("--version", action="version", version=f"graybox {__version__}")
+    sub = p.add_subparsers(dest="command", required=True, parser_class=_Parser)
+
+    f = sub.add_parser("fit", help="fit a study file's model to its data and write a run folder")
+    f.add_argument("config", help="the study file (TOML)")
+    f.add_argument("--out", required=True, help="the run folder to create (must not exist)")
+    f.add_argument("--force", action="store_true", help="replace an existing run folder")
+    _sampling_options(f)
+
+    d = sub.add_parser("demo", help="run the whole job on the bundled demo data")
+    d.add_argument("--out", default="demo-run", help="the run folder to create (default: demo-run)")
+    d.add_argument("--force", action="store_true", help="replace an existing run folder")
+    _sampling_options(d)
+
+    c = sub.add_parser("check", help="check a study file and its data without fitting")
+    c.add_argument("config", help="the study file (TOML)")
+    return p
+
+
+def _sampling_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--no-sample", action="store_true", help="skip posterior sampling (least squares only)")
+    p.add_argument("--walkers", type=int, default=None, help="number of walkers for posterior sampling")
+    p.add_argument("--max-steps", type=int, default=None, help="step limit for posterior sampling")
+    p.add_argument("--seed", type=int, default=None, help="seed for the run (overrides the study file)")
+
+
+def _sampler_overrides(args) -> dict:
+    return {k: v for k, v in (("walkers", args.walkers), ("max_steps", args.max_steps), ("seed", args.seed))
+            if v is not None}
+
+
+def run(argv: list[str] | None = None) -> int:
+    args = build_parser().parse_args(argv)
+    from graybox import workflow
+
+    if args.command == "fit":
+        workflow.fit_study(args.config, args.out, force=args.force, sample=not args.no_sample,
+                           sampler_options=_sampler_overrides(args))
+        return EXIT_OK
+    if args.command == "demo":
+        workflow.run_demo(args.out, force=args.force, sample=not args.no_sample)
+        return EXIT_OK
+    if args.command == "check":
+        return workflow.check_study(args.config)
+    raise AssertionError(args.command)
+
+
+def main(argv: list[str] | None = None) -> int:
+    try:
+        code = run(argv)
+    except GrayboxError as exc:
+        print(f"error: {exc.render()}", file=sys.stderr)
+        code = EXIT_USER
+    except KeyboardInterrupt:
+        print("interrupted; no run folder was finished", file=sys.stderr)
+        code = 130
+    except SystemExit as exc:
+        code = int(exc.code or 0)
+    except Exception:  # noqa: BLE001 - the last line of defence: a bug, reported as such
+        traceback.print_exc()
+        print("internal error: this is a bug in graybox, not in your input; please report it with the "
+              "traceback above", file=sys.stderr)
+        code = EXIT_INTERNAL
+    return code
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,142 @@
+"""The study file: one TOML file says what to fit to what.
+
+Top-level tables (every key is checked; unknown keys are rejected with a suggestion)::
+
+    [study]                 name, seed, dataset (a name recorded in the run record)
+    [model] ...             states, inputs, constants, derived, outputs (graybox.model.build)
+    [parameters.NAME]       guess, bounds, units, fixed, scope, prior, log_scale
+    [data]                  one experiment (named "main"), or
+    [experiments.NAME]      several, each with the data table's keys (graybox.data)
+    [noise.OUTPUT]          sigma = 0.1 (given) or "estimate" (the default); kind, phi, ...
+    [estimate]              multistart, max_evaluations, polish, engine, integrator, rtol, atol
+    [sampling]              the posterior stage (graybox.posterior)
+
+Relative paths inside resolve against the folder of the study file.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from graybox.configkit import Table, load_toml
+from graybox.errors import ConfigError
+from graybox.estimate.fit import FitSettings
+from graybox.model.build import build_spec
+from graybox.model.spec import ModelSpec
+from graybox.simulate import ENGINES, Tolerances
+from graybox.simulate.integrators import METHODS
+
+TOP_KEYS = ("study", "model", "parameters", "data", "experiments", "noise", "estimate", "sampling")
+STUDY_KEYS = ("name", "seed", "dataset", "description")
+NOISE_KEYS = ("sigma", "kind", "phi", "error_time_constant", "dof")
+NOISE_KINDS = ("gaussian", "ar1", "student_t")
+ESTIMATE_KEYS = ("multistart", "max_evaluations", "polish", "engine", "integrator", "rtol", "atol")
+
+
+@dataclass(frozen=True)
+class NoiseSpec:
+    output: str
+    sigma: float | None  # None: estimated
+    kind: str = "gaussian"
+    options: dict = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class Study:
+    """A validated study file."""
+
+    path: Path
+    raw: dict
+    name: str
+    seed: int
+    dataset: str | None
+    spec: ModelSpec
+    experiments: dict[str, Table]  # name -> raw data table (validated by the data layer on load)
+    noise: dict[str, NoiseSpec]
+    fit: FitSettings
+    engine: str
+    tol: Tolerances
+    sampling: Table
+
+    @property
+    def base_dir(self) -> Path:
+        return self.path.parent
+
+
+def load_study(path: str | Path) -> Study:
+    """Read and check a study file (model checks included); no data is read yet."""
+    path = Path(path).resolve()
+    raw = load_toml(path)
+    top = Table(raw, (), path)
+    top.check_keys(TOP_KEYS)
+    st = top.sub("study")
+    st.check_keys(STUDY_KEYS)
+    spec = build_spec(top.sub("model", required=True), top.sub("parameters"))
+    experiments = _experiments(top)
+    noise = _noise(top.sub("noise"), spec)
+    est = top.sub("estimate")
+    est.check_keys(ESTIMATE_KEYS)
+    seed = int(st.number("seed", 0, integer=True, minimum=0))
+    fit = FitSettings(
+        sigmas={o: n.sigma for o, n in noise.items()},
+        multistart=int(est.number("multistart", 0, integer=True, minimum=0)),
+        max_nfev=int(est.number("max_evaluations", 2000, integer=True, minimum=10)),
+        polish=est.boolean("polish", True),
+        seed=seed,
+    )
+    tol = Tolerances(
+        rtol=est.number("rtol", 1e-8, positive=True),
+        atol=est.number("atol", 1e-10, positive=True),
+        method=est.string("integrator", "auto", METHODS),
+    )
+    return Study(
+        path=path,
+        raw=raw,
+        name=st.string("name", spec.name),
+        seed=seed,
+        dataset=st.string("dataset", None) if "dataset" in st else None,
+        spec=spec,
+        experiments=experiments,
+        noise=noise,
+        fit=fit,
+        engine=est.string("engine", "auto", ENGINES),
+        tol=tol,
+        sampling=top.sub("sampling"),
+    )
+
+
+def _experiments(top: Table) -> dict[str, Table]:
+    if "data" in top and "experiments" in top:
+        raise top.error("experiments", "give either one [data] table or [experiments.NAME] tables, not both")
+    if "data" in top:
+        return {"main": top.sub("data")}
+    exps = top.sub("experiments")
+    if not exps.keys():
+        raise ConfigError("no data: add a [data] table (one experiment) or [experiments.NAME] tables",
+                          where=top.where())
+    return {name: exps.sub(name) for name in exps.keys()}
+
+
+def _noise(table: Table, spec: ModelSpec) -> dict[str, NoiseSpec]:
+    outputs = spec.output_names
+    out = {}
+    for name in table.keys():
+        if name not in outputs:
+            import difflib
+
+            close = difflib.get_close_matches(name, outputs, n=1)
+            raise table.error(name, f"'{name}' is not a measured output of the model",
+                              hint=(f"did you mean '{close[0]}'? " if close else "") + f"outputs: {', '.join(outputs)}")
+    for o in outputs:
+        t = table.sub(o)
+        t.check_keys(NOISE_KEYS)
+        sigma = t.get("sigma", "estimate")
+        if sigma == "estimate":
+            value = None
+        else:
+            value = t.number("sigma", positive=True)
+        kind = t.string("kind", "gaussian", NOISE_KINDS)
+        options = {k: t.data[k] for k in ("phi", "error_time_constant", "dof") if k in t}
+        out[o] = NoiseSpec(o, value, kind, options)
+    return out

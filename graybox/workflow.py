@@ -1,0 +1,207 @@
+"""The jobs behind the commands, callable from Python the same way as from the shell.
+
+``fit_study``: study file -> data + model -> simulation -> least squares -> (posterior) ->
+run folder.  ``check_study``: the checks a fit would make, without fitting.
+``run_demo``: the whole job on the bundled demo data.
+"""
+
+from __future__ import annotations
+
+import json
+import platform
+import shutil
+import sys
+import time
+from dataclasses import dataclass
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+
+import graybox
+from graybox.config import Study, load_study
+from graybox.errors import GrayboxError
+from graybox.estimate.fit import FitResult, fit
+from graybox.estimate.problem import Experiment, Problem
+from graybox.runs.artifacts import OutputTrace, plot_overlay, write_fitted_csv
+from graybox.runs.folder import RESULTS, building, sha256_file, write_json
+from graybox.simulate import Engine, plan
+
+Echo = Callable[[str], None]
+
+PACKAGES = ("numpy", "scipy", "pandas", "lmfit", "emcee", "numba", "pint", "matplotlib")
+
+
+@dataclass
+class Prepared:
+    study: Study
+    problem: Problem
+    reports: dict  # experiment -> DataReport
+    engine: Engine
+
+
+def data_symbols(study: Study) -> dict:
+    """What the data layer may feed: every model input and every measured output."""
+    from graybox.data.config import SymbolInfo
+
+    spec = study.spec
+    out = {u.name: SymbolInfo(u.name, "input", u.units, u.hold) for u in spec.inputs}
+    for o in spec.outputs:
+        out[o.name] = SymbolInfo(o.name, "output", o.units, "previous")
+    return out
+
+
+def load_records(study: Study) -> tuple[list, dict]:
+    from graybox.data import load_experiment
+
+    symbols = data_symbols(study)
+    records, reports = [], {}
+    for name, table in study.experiments.items():
+        where = table.where()
+        rec, rep = load_experiment(table.data, name, symbols=symbols, base_dir=study.base_dir, where=where)
+        records.append(rec)
+        reports[name] = rep
+    return records, reports
+
+
+def prepare(study: Study) -> Prepared:
+    records, reports = load_records(study)
+    engine = Engine(study.spec, study.engine, study.tol)
+    experiments = [Experiment(r.name, plan(study.spec, r)) for r in records]
+    return Prepared(study, Problem(study.spec, experiments, engine), reports, engine)
+
+
+def traces_for(problem: Problem, x: np.ndarray) -> list[OutputTrace]:
+    preds, _ = problem.predictions(np.atleast_2d(x))
+    traces = []
+    for e, (ex, pred) in enumerate(zip(problem.experiments, preds)):
+        rec = ex.record
+        for o in problem.spec.outputs:
+            used = ex.timeline.used[o.name]
+            traces.append(OutputTrace(ex.name, o.name, o.units, rec.outputs[o.name].t[used], rec.start_utc,
+                                      problem.observed(e, o.name), pred[o.name][0]))
+    return traces
+
+
+def package_versions() -> dict[str, str]:
+    from importlib.metadata import PackageNotFoundError, version
+
+    out = {}
+    for name in PACKAGES:
+        try:
+            out[name] = version(name)
+        except PackageNotFoundError:
+            out[name] = "not installed"
+    return out
+
+
+def run_record(study: Study, prepared: Prepared, started: datetime, wall_s: float) -> dict:
+    files = []
+    for ex in prepared.problem.experiments:
+        for src in ex.record.sources:
+            files.append({"experiment": ex.name, **dict(src)})
+    return {
+        "seed": study.seed,
+        "dataset": study.dataset,
+        "config": str(study.path),
+        "config_sha256": sha256_file(study.path),
+        "data_files": files,
+        "graybox_version": graybox.__version__,
+        "engine": prepared.engine.name,
+        "engine_note": prepared.engine.note,
+        "integrator": {"method": study.tol.method, "rtol": study.tol.rtol, "atol": study.tol.atol},
+        "started_utc": started.strftime("%Y-%m-%dT%H:%M:%SZ"),
+        "wall_s": wall_s,
+        "python": sys.version.split()[0],
+        "platform": platform.platform(),
+        "packages": package_versions(),
+    }
+
+
+def results_document(study: Study, prepared: Prepared, res: FitResult, started: datetime, wall_s: float) -> dict:
+    return {
+        "graybox": {"version": graybox.__version__, "schema": 1},
+        "study": {"name": study.name, "model": study.spec.describe(), "model_warnings": list(study.spec.warnings)},
+        "parameters": {name: p.to_dict() for name, p in res.parameters.items()},
+        "noise": res.noise_dict(),
+        "fit": res.fit_dict(),
+        "data": {name: rep.to_dict() for name, rep in prepared.reports.items()},
+        "run": run_record(study, prepared, started, wall_s),
+    }
+
+
+CAUTION = ("Caution: a fitted model supports engineering judgement; it does not replace it, nor safety systems, "
+           "local codes or licensed engineering review.")
+
+
+def fit_study(config: str | Path, out: str | Path, *, force: bool = False, echo: Echo = print,
+              sample: bool | None = None, sampler_options: dict | None = None) -> dict:
+    """Fit a study and write its run folder; returns the results document."""
+    t0 = time.perf_counter()
+    started = datetime.now(timezone.utc)
+    out = Path(out)
+    from graybox.runs.folder import check_target
+
+    check_target(out.absolute(), force)
+    study = load_study(config)
+    for w in study.spec.warnings:
+        echo(f"warning: {w}")
+    prepared = prepare(study)
+    for name, rep in prepared.reports.items():
+        echo(rep.summary())
+    res = fit(prepared.problem, study.fit)
+    echo(res.summary())
+    wall = time.perf_counter() - t0
+    doc = results_document(study, prepared, res, started, wall)
+    with building(out, force) as tmp:
+        shutil.copyfile(study.path, tmp / "study.toml")
+        traces = traces_for(prepared.problem, res.x)
+        write_fitted_csv(tmp / "fitted.csv", traces)
+        plot_overlay(tmp / "fit.png", traces, f"{study.name}: least-squares fit")
+        doc["run"]["wall_s"] = time.perf_counter() - t0
+        write_json(tmp / RESULTS, doc)
+    echo(f"run folder: {out}")
+    echo(CAUTION)
+    return doc
+
+
+def check_study(config: str | Path, *, echo: Echo = print) -> int:
+    """Model and data checks without fitting; 0 when a fit could run."""
+    study = load_study(config)
+    echo(study.spec.describe())
+    for w in study.spec.warnings:
+        echo(f"warning: {w}")
+    prepared = prepare(study)
+    for name, rep in prepared.reports.items():
+        echo(rep.summary())
+    echo(f"ready to fit: {prepared.problem.n_free} free values, {prepared.problem.n_obs} observations")
+    return 0
+
+
+DEMO = "storage_vessel"
+
+
+def demo_paths() -> tuple[Path, Path]:
+    """The bundled demo study file and dataset folder (source tree or installed copy)."""
+    root = Path(graybox.__file__).resolve().parent.parent
+    cfg = root / "configs" / f"{DEMO}.toml"
+    data = root / "datasets" / DEMO
+    if not cfg.exists():
+        raise GrayboxError(f"the demo study file {cfg} is missing",
+                           hint="run the demo from a source checkout (pip install -e .)")
+    return cfg, data
+
+
+def run_demo(out: str | Path, *, force: bool = False, echo: Echo = print, sample: bool | None = None) -> dict:
+    cfg, data = demo_paths()
+    doc = fit_study(cfg, out, force=force, echo=echo, sample=sample)
+    truth = json.loads((data / "truth.json").read_text())["parameters"]
+    echo("demo truth check (values the data were generated with):")
+    for name, value in truth.items():
+        p = doc["parameters"][name]
+        lo, hi = p["ci95"]
+        inside = lo <= value <= hi
+        echo(f"  {name}: true {value:g}, estimate {p['estimate']:.6g}, 95% interval [{lo:.6g}, {hi:.6g}] "
+             f"{'contains' if inside else 'MISSES'} the truth")
+    return doc
