@@ -205,6 +205,8 @@ def _convert(node: ast.AST, text: str, where: str) -> Node:  # noqa: C901 (one d
             _reject(node, text, where, "only the listed math functions can be called",
                     hint=f"allowed: {', '.join(FUNCTIONS)}")
         fn = node.func.id
+        if fn.startswith("_"):
+            _reject(node, text, where, f"names starting with an underscore are not allowed: '{fn}'")
         if fn not in FUNCTIONS:
             import difflib
 
