@@ -139,7 +139,7 @@ class ModelFunctions:
 
 def spec_digest(spec: ModelSpec) -> str:
     """A hash of what the generated code depends on (the inlined trees and symbol order)."""
-    parts = [repr(spec.state_names), repr(spec.input_names), repr(spec.parameter_names), repr(spec.output_names),
+    parts = [repr(id(spec.python_rhs)) if spec.python_rhs is not None else "",repr(spec.state_names), repr(spec.input_names), repr(spec.parameter_names), repr(spec.output_names),
              repr(spec.rates), repr(spec.output_exprs)]
     return hashlib.sha256("\n".join(parts).encode()).hexdigest()[:16]
 
@@ -147,10 +147,46 @@ def spec_digest(spec: ModelSpec) -> str:
 @lru_cache(maxsize=64)
 def _generate_cached(spec: ModelSpec) -> ModelFunctions:
     defs = tensor_defs(spec)
+    if spec.python_rhs is not None:  # only the output functions come from trees
+        defs = [d for d in defs if d.name in ("g", "gx", "gp")]
     source = "import numpy as np\n\n" + tensor_source(defs, symbol_env(spec), "numpy")
     fns = compile_functions(source, [d.name for d in defs], filename=f"<graybox model {spec.name}>")
-    return ModelFunctions(spec, source, fns, {d.name: d.shape for d in defs},
-                          {d.name: len(d.entries) for d in defs}, spec_digest(spec))
+    if spec.python_rhs is not None:
+        fns.update(_python_functions(spec))
+    shapes = {d.name: d.shape for d in tensor_defs(spec)}
+    return ModelFunctions(spec, source, fns, shapes, {d.name: len(d.entries) for d in defs}, spec_digest(spec))
+
+
+def _python_functions(spec: ModelSpec) -> dict[str, Callable]:
+    """f from the user's function; f_x, f_p, f_u by central differences (step ~ eps**(1/3))."""
+    import numpy as np
+
+    f = spec.python_rhs
+    n_x = len(spec.states)
+
+    def central(which: int):
+        def jac(x, u, p, out):
+            args = [x, u, p]
+            base = np.asarray(args[which], dtype=float)
+            for j in range(base.shape[0]):
+                h = 6e-6 * (1.0 + np.abs(base[j]))
+                up, dn = base.copy(), base.copy()
+                up[j] = base[j] + h
+                dn[j] = base[j] - h
+                fu_, fd_ = np.zeros_like(out[:, 0]), np.zeros_like(out[:, 0])
+                a_up, a_dn = list(args), list(args)
+                a_up[which], a_dn[which] = up, dn
+                f(*a_up, fu_)
+                f(*a_dn, fd_)
+                out[:, j] = (fu_ - fd_) / (2 * h)
+        return jac
+
+    def no_second(*_):
+        raise NotImplementedError("second derivatives of a Python right-hand side are not available")
+
+    del n_x
+    return {"f": f, "fx": central(0), "fu": central(1), "fp": central(2),
+            "fxx": no_second, "fpx": no_second, "fxu": no_second, "fpu": no_second}
 
 
 def generate(spec: ModelSpec) -> ModelFunctions:
