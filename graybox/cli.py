@@ -41,6 +41,16 @@ def build_parser() -> argparse.ArgumentParser:
 
     c = sub.add_parser("check", help="check a study file and its data without fitting")
     c.add_argument("config", help="the study file (TOML)")
+
+    b = sub.add_parser("batch", help="run many fits from a manifest (a CSV table of jobs)")
+    b.add_argument("manifest", help="the manifest CSV: job, study, data, start, end, sample")
+    b.add_argument("--out", required=True, help="folder for the job run folders and the summary tables")
+    b.add_argument("--workers", type=int, default=2, help="jobs run at once on this machine (default 2)")
+    b.add_argument("--timeout", type=float, default=1800.0, help="seconds each job may take (default 1800)")
+    b.add_argument("--cluster", default=None, help="address of an existing Dask scheduler, e.g. tcp://host:8786")
+    b.add_argument("--shared-storage", action="store_true",
+                   help="the cluster's workers see the same files: send paths, not file contents")
+    b.add_argument("--seed", type=int, default=0, help="base seed; each job's seed derives from it and its name")
     return p
 
 
@@ -69,6 +79,18 @@ def run(argv: list[str] | None = None) -> int:
         return EXIT_OK
     if args.command == "check":
         return workflow.check_study(args.config)
+    if args.command == "batch":
+        from pathlib import Path
+
+        from graybox.batch.runner import BatchSettings, run_batch
+
+        if args.workers < 1 or args.timeout <= 0:
+            from graybox.errors import BatchError
+
+            raise BatchError("--workers must be at least 1 and --timeout positive")
+        settings = BatchSettings(Path(args.out), args.workers, args.timeout, args.cluster, args.shared_storage, args.seed)
+        df = run_batch(args.manifest, settings)
+        return EXIT_OK if (df["status"] != "failed").all() and (df["status"] != "timeout").all() else EXIT_USER
     raise AssertionError(args.command)
 
 

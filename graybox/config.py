@@ -64,10 +64,13 @@ class Study:
         return self.path.parent
 
 
-def load_study(path: str | Path) -> Study:
-    """Read and check a study file (model checks included); no data is read yet."""
+def load_study(path: str | Path, overrides: dict | None = None) -> Study:
+    """Read and check a study file (model checks included); no data is read yet.
+
+    ``overrides`` replaces keys of top-level tables before validation, e.g.
+    ``{"data": {"files": [...]}}`` (used by fleet batches to point one study at many units)."""
     path = Path(path).resolve()
-    raw = load_toml(path)
+    raw = apply_overrides(load_toml(path), overrides or {}, path)
     top = Table(raw, (), path)
     top.check_keys(TOP_KEYS)
     st = top.sub("study")
@@ -104,6 +107,28 @@ def load_study(path: str | Path) -> Study:
         tol=tol,
         sampling=top.sub("sampling"),
     )
+
+
+def apply_overrides(raw: dict, overrides: dict, path: Path) -> dict:
+    """A copy of ``raw`` with ``overrides[table][key]`` replacing ``raw[table][key]``."""
+    import copy
+
+    def merge(into: dict, new: dict) -> None:
+        for k, v in new.items():
+            if isinstance(v, dict) and isinstance(into.get(k), dict):
+                merge(into[k], v)
+            else:
+                into[k] = copy.deepcopy(v)
+
+    out = copy.deepcopy(raw)
+    for table, values in overrides.items():
+        if table == "data" and "experiments" in out:
+            raise ConfigError("a data override needs a study with one [data] table, not [experiments]",
+                              where=str(path), hint="give each unit its own study file")
+        if not isinstance(values, dict):
+            raise ConfigError(f"override of [{table}] must be a table of keys", where=str(path))
+        merge(out.setdefault(table, {}), values)
+    return out
 
 
 def _experiments(top: Table) -> dict[str, Table]:

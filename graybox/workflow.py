@@ -7,6 +7,7 @@ run folder.  ``check_study``: the checks a fit would make, without fitting.
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import platform
 import shutil
@@ -135,16 +136,26 @@ CAUTION = ("Caution: a fitted model supports engineering judgement; it does not 
            "local codes or licensed engineering review.")
 
 
+def with_seed(study: Study, seed: int | None) -> Study:
+    if seed is None:
+        return study
+    return dataclasses.replace(study, seed=int(seed), fit=dataclasses.replace(study.fit, seed=int(seed)))
+
+
 def fit_study(config: str | Path, out: str | Path, *, force: bool = False, echo: Echo = print,
-              sample: bool | None = None, sampler_options: dict | None = None) -> dict:
-    """Fit a study and write its run folder; returns the results document."""
+              sample: bool | None = None, sampler_options: dict | None = None, overrides: dict | None = None,
+              seed: int | None = None, run_info: dict | None = None) -> dict:
+    """Fit a study and write its run folder; returns the results document.
+
+    ``overrides`` replace study-file keys (fleet batches); ``seed`` replaces the study's seed;
+    ``run_info`` is merged into the run record."""
     t0 = time.perf_counter()
     started = datetime.now(timezone.utc)
     out = Path(out)
     from graybox.runs.folder import check_target
 
     check_target(out.absolute(), force)
-    study = load_study(config)
+    study = with_seed(load_study(config, overrides), seed)
     for w in study.spec.warnings:
         echo(f"warning: {w}")
     prepared = prepare(study)
@@ -154,6 +165,8 @@ def fit_study(config: str | Path, out: str | Path, *, force: bool = False, echo:
     echo(res.summary())
     wall = time.perf_counter() - t0
     doc = results_document(study, prepared, res, started, wall)
+    doc["run"]["overrides"] = overrides or {}
+    doc["run"].update(run_info or {})
     with building(out, force) as tmp:
         shutil.copyfile(study.path, tmp / "study.toml")
         traces = traces_for(prepared.problem, res.x)

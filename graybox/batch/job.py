@@ -1,0 +1,62 @@
+"""One fleet job, run in its own process: ``python -m graybox.batch.job SPEC.json``.
+
+The parent (a local thread or a Dask worker) starts this process with a timeout, so a job
+that hangs or overruns is killed without taking its worker down.  One numba / BLAS thread
+per job: fleets parallelise over jobs.
+
+A job spec is JSON: ``{"job", "study", "overrides", "out", "seed", "sample", "batch"}``.
+The process writes the run folder ``out`` (atomically, through graybox.workflow.fit_study)
+and exits 0, or 2 on a user error (its message on stderr), or 1 on a bug.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import sys
+from pathlib import Path
+
+SINGLE_THREAD_ENV = {
+    "NUMBA_NUM_THREADS": "1",
+    "OMP_NUM_THREADS": "1",
+    "OPENBLAS_NUM_THREADS": "1",
+    "MKL_NUM_THREADS": "1",
+}
+
+
+def job_environment() -> dict[str, str]:
+    env = dict(os.environ)
+    env.update(SINGLE_THREAD_ENV)
+    env.setdefault("MPLBACKEND", "Agg")
+    return env
+
+
+def run_spec(spec: dict) -> None:
+    from graybox.workflow import fit_study
+
+    fit_study(spec["study"], spec["out"], force=True, echo=lambda _msg: None, sample=spec.get("sample"),
+              overrides=spec.get("overrides") or {}, seed=spec.get("seed"), run_info={"batch": spec.get("batch", {})})
+
+
+def main(argv: list[str] | None = None) -> int:
+    argv = sys.argv[1:] if argv is None else argv
+    from graybox.cli import EXIT_INTERNAL, EXIT_OK, EXIT_USER
+    from graybox.errors import GrayboxError
+
+    try:
+        spec = json.loads(Path(argv[0]).read_text(encoding="utf-8"))
+        run_spec(spec)
+        return EXIT_OK
+    except GrayboxError as exc:
+        print(f"error: {exc.render()}", file=sys.stderr)
+        return EXIT_USER
+    except Exception as exc:  # noqa: BLE001 - reported to the parent as an internal failure
+        import traceback
+
+        traceback.print_exc()
+        print(f"internal error: {type(exc).__name__}: {exc}", file=sys.stderr)
+        return EXIT_INTERNAL
+
+
+if __name__ == "__main__":
+    sys.exit(main())
