@@ -11,7 +11,8 @@ Columns (``job`` and ``study`` required, the rest optional)::
 * ``data``: data files replacing the study's ``[data] files`` (``;``-separated); empty:
   the study's own files;
 * ``start`` / ``end``: a time window (ISO 8601, UTC if no offset) replacing the study's;
-* ``sample``: ``yes``/``no`` (empty: the study's setting).
+* ``sample``: ``yes``/``no`` (empty: the study's setting);
+* ``timeout``: seconds this job may take (empty: the batch's ``--timeout``).
 
 Every row is checked before any job starts: a missing file or a bad window is reported with
 the manifest's line number.
@@ -29,7 +30,7 @@ import pandas as pd
 from graybox.errors import BatchError
 
 REQUIRED = ("job", "study")
-COLUMNS = ("job", "study", "data", "start", "end", "sample")
+COLUMNS = ("job", "study", "data", "start", "end", "sample", "timeout")
 _JOB_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.\-]*$")
 
 
@@ -42,13 +43,14 @@ class Job:
     end: str | None
     sample: bool | None
     line: int
+    timeout_s: float | None = None
 
     def overrides(self) -> dict:
         data: dict = {}
         if self.data:
             data["files"] = [str(p) for p in self.data]
         if self.start or self.end:
-            data["window"] = [self.start or "", self.end or ""]
+            data["select"] = [[self.start or "1900-01-01T00:00:00Z", self.end or "2200-01-01T00:00:00Z"]]
         return {"data": data} if data else {}
 
 
@@ -122,7 +124,15 @@ def read_manifest(path: str | Path) -> list[Job]:
         end = _parse_time(cells["end"], where) if cells.get("end") else None
         if start and end and not pd.Timestamp(start) < pd.Timestamp(end):
             raise BatchError(f"the window ends ({end}) before it starts ({start})", where=where)
-        jobs.append(Job(name, study, data, start, end, _parse_bool(cells.get("sample", ""), where), i))
+        timeout = None
+        if cells.get("timeout"):
+            try:
+                timeout = float(cells["timeout"])
+            except ValueError:
+                timeout = -1.0
+            if not timeout > 0:
+                raise BatchError(f"timeout must be a positive number of seconds, got '{cells['timeout']}'", where=where)
+        jobs.append(Job(name, study, data, start, end, _parse_bool(cells.get("sample", ""), where), i, timeout))
     if not jobs:
         raise BatchError(f"{path}: the manifest lists no job")
     return jobs

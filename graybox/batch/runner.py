@@ -217,7 +217,7 @@ def run_local(todo: list[tuple[Job, dict]], settings: BatchSettings) -> list[Job
         futures = {}
         for job, spec in todo:
             spec = dict(spec, out=str(settings.out / job.name))
-            futures[pool.submit(execute, spec, settings.timeout_s)] = job
+            futures[pool.submit(execute, spec, job.timeout_s or settings.timeout_s)] = job
         for fut in as_completed(futures):
             job = futures[fut]
             outcomes.append(_outcome(job, fut.result(), settings))
@@ -260,11 +260,11 @@ def run_cluster(todo: list[tuple[Job, dict]], settings: BatchSettings, client) -
     for job, spec in todo:
         if settings.shared_storage:
             spec = dict(spec, out=str(settings.out / job.name))
-            fut = client.submit(execute, spec, settings.timeout_s, None, key=f"graybox-{job.name}-{spec['seed']}",
+            fut = client.submit(execute, spec, job.timeout_s or settings.timeout_s, None, key=f"graybox-{job.name}-{spec['seed']}",
                                 pure=False)
         else:
             packed = pack_job(job, spec)
-            fut = client.submit(execute, packed["spec"], settings.timeout_s, packed["files"],
+            fut = client.submit(execute, packed["spec"], job.timeout_s or settings.timeout_s, packed["files"],
                                 key=f"graybox-{job.name}-{spec['seed']}", pure=False)
         futures[fut] = job
     outcomes = []
