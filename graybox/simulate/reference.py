@@ -233,11 +233,29 @@ def _knot_observations(funcs, seg: SegmentPlan) -> dict[int, list[tuple[int, str
 
 
 def _static_segment(b: Batch, funcs, seg: SegmentPlan, outputs, sens_out, n_c) -> None:
-    knot_obs = _knot_observations(funcs, seg)
-    # Static models: vectorise over knots too by evaluating per knot (outputs depend on u only).
-    for k in sorted(knot_obs):
-        _observe(b, funcs, seg, k, np.zeros((0, b.n_sets)), np.zeros((0, n_c, b.n_sets)) if sens_out is not None else None,
-                 outputs, sens_out, knot_obs)
+    """Outputs of a model without states, vectorised over knots and parameter sets at once:
+    inputs broadcast as (n_u, n_knots, 1) against parameters (n_p, 1, n_sets)."""
+    knots = np.unique(np.concatenate([seg.obs_knot[o] for o in funcs.spec.output_names]))
+    if knots.size == 0:
+        return
+    u = seg.u[knots].T[:, :, None]
+    p = b.p[:, None, :]
+    x = np.zeros((0, knots.size, b.n_sets))
+    g = np.zeros((funcs.n_y, knots.size, b.n_sets))
+    funcs.fns["g"](x, u, p, g)
+    gp = None
+    if sens_out is not None and funcs.n_p:
+        gp = np.zeros((funcs.n_y, funcs.n_p, knots.size, b.n_sets))
+        funcs.fns["gp"](x, u, p, gp)
+    pos = {int(k): i for i, k in enumerate(knots)}
+    for r, o in enumerate(funcs.spec.output_names):
+        rows = np.array([pos[int(k)] for k in seg.obs_knot[o]], dtype=int)
+        idx = seg.obs_index[o]
+        outputs[o][:, idx] = g[r][rows].T
+        if sens_out is not None:
+            sens_out[o][:, idx, :] = 0.0
+            if gp is not None:
+                sens_out[o][:, idx, : funcs.n_p] = np.moveaxis(gp[r][:, rows, :], 0, -1).transpose(1, 0, 2)
 
 
 def h_min(span: float) -> float:
