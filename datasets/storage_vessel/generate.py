@@ -8,10 +8,12 @@ and the heater efficiency eta [-].
 
     M*cp*dT/dt = eta*Q + F*cp*(T_in - T) - UA*(T - T_room)
 
-The historian export mimics a real one: a reading about every 60 s with jitter, ISO 8601
-stamps with a UTC offset, room temperature logged in degF, heater power in kW, draw-off
-flow in kg/h, two outages (empty cells) and a few bad-quality readings (flagged in a
-quality column, values that must not be used).
+The historian export mimics a real one: a row about every 60 s with jitter, plus a row at
+every heater switch and at every start and stop of a draw (those tags report by exception,
+so their changes are stamped when they happen), ISO 8601 stamps with a UTC offset, room
+temperature logged in degF, heater power in kW, draw-off flow in kg/h, two outages (empty
+cells) and a few bad-quality readings (flagged in a quality column, values that must not
+be used).
 
 The truth is integrated exactly: with inputs held between the 10 s control ticks the
 model is linear in T, so each tick has a closed-form exponential solution.
@@ -65,7 +67,7 @@ def simulate(rng):
             heating = True
         elif temp_now > 62.0:
             heating = False
-        q[k] = Q_RATED * (0.985 + 0.03 * rng.random()) if heating else 0.0
+        q[k] = Q_RATED * (1.0 + 0.01 * np.sin(2 * np.pi * t[k] / 40000.0)) if heating else 0.0
         temp[k] = temp_now
         a = f[k] * CP + ua
         t_ss = (eta * q[k] + f[k] * CP * t_in[k] + ua * t_room[k]) / a
@@ -74,13 +76,15 @@ def simulate(rng):
 
 
 def export(t, q, f, t_in, t_room, temp, rng):
-    """Rows about every 60 s (jittered), each the value held at that instant."""
+    """Rows about every 60 s (jittered) and at every heater or draw change, each with the
+    values held at that instant."""
     stamps = []
     s = 0.0
     while s < t[-1]:
         stamps.append(s)
         s += 60.0 + rng.uniform(-6, 6)
-    stamps = np.array(stamps)
+    changes = np.flatnonzero((np.diff(q > 0) != 0) | (np.diff(f) != 0)) + 1
+    stamps = np.unique(np.concatenate([np.array(stamps), t[changes]]))
     idx = np.searchsorted(t, stamps, side="right") - 1
     # sample the vessel temperature exactly at the stamp (exact solution within the tick)
     frac = stamps - t[idx]
