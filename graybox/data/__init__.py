@@ -1,4 +1,11 @@
-"""Historian data layer: plant exports in, clean records in model units out."""
+"""Historian data layer: plant exports in, clean records in model units out.
+
+``load_experiment`` reads one experiment's files as its config table says (see
+:mod:`graybox.data.config` for every key) and returns the Record and a DataReport;
+``check_experiment`` does the same without stopping at problems that only stop a fit;
+``split_record`` cuts a record into fit and validation parts; ``rank_windows`` ranks
+candidate windows by how much they would inform the free parameters.
+"""
 
 from graybox.data.record import (  # noqa: F401
     HOLD_LINEAR,
@@ -9,3 +16,6 @@ from graybox.data.record import (  # noqa: F401
     Segment,
     record_from_arrays,
 )
+from graybox.data.config import SymbolInfo  # noqa: F401
+from graybox.data.report import DataReport, SegmentReport, TagReport  # noqa: F401
+from graybox.data.assemble import check_experiment, data_spec, load_experiment  # noqa: F401

@@ -1,0 +1,457 @@
+"""From files to a Record: read every file, stamp rows in UTC, gather each tag's samples,
+sort, drop duplicates, judge quality, convert units, cut windows and segments.
+
+Order of work per tag (each step a small function below):
+
+1. every file's rows of the tag, in recorded order (files in the order given);
+2. time stamps resolved per file in recorded order (see timestamps.py); rows whose wall time
+   does not exist are masked with that reason;
+3. selected windows kept, excluded windows dropped;
+4. sorted by time (stably); exact duplicates (same time, value and flag) dropped; of
+   conflicting duplicates (same time, another value) the first recorded is kept, the others
+   are counted and one example is named;
+5. report-by-exception tags: held repeats dropped;
+6. quality flag, valid range (in the tag's own units), units into the model's, spikes, stuck.
+
+Outputs keep every sample with a mask; inputs lose their masked samples (the last good
+value holds).  Input gaps longer than the gap limit, excluded windows and the spaces between
+selected windows split the record into segments; a segment without a valid observation of
+every output is dropped (and noted).
+"""
+
+from __future__ import annotations
+
+import difflib
+from dataclasses import dataclass
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Mapping
+
+import numpy as np
+
+from graybox.data.config import ROLE_INPUT, DataSpec, SymbolInfo, TagSpec, parse_data_table
+from graybox.data.quality import (REASON_NONEXISTENT, REASON_QUALITY, REASON_RANGE, REASON_SPIKE, REASON_STUCK,
+                                  bad_quality, count_first_reasons, held_repeats, out_of_range, spikes, stuck)
+from graybox.data.readers import RawTable, file_sha256, read_table
+from graybox.data.record import InputSeries, OutputSeries, Record, Segment
+from graybox.data.report import DataReport, SegmentReport, TagReport
+from graybox.data.timestamps import NAT, Place, parse_stamps
+from graybox.data.units import Conversion, tag_conversion
+from graybox.errors import DataError
+
+_EPOCH = datetime(1970, 1, 1, tzinfo=timezone.utc)
+
+
+@dataclass(frozen=True)
+class Chunk:
+    """One tag's rows from one file, in recorded order, stamped in UTC."""
+
+    file: int  # index into the experiment's files
+    word: str
+    numbers: np.ndarray
+    t_ns: np.ndarray
+    nonexistent: np.ndarray
+    values: np.ndarray
+    quality: np.ndarray | None
+
+
+@dataclass(frozen=True)
+class TagData:
+    """One tag after all judgement: sorted samples in model units with their use mask."""
+
+    spec: TagSpec
+    t_ns: np.ndarray
+    values: np.ndarray  # model units
+    use: np.ndarray  # True = usable (not masked)
+    stuck: np.ndarray  # True = judged stuck (masked too if stuck_action = "mask")
+    conversion: Conversion
+    stats: dict
+
+
+def iso(ns: int | None) -> str | None:
+    if ns is None:
+        return None
+    return datetime.fromtimestamp(ns // 10**9, tz=timezone.utc).replace(
+        microsecond=(ns % 10**9) // 1000).isoformat()
+
+
+def ns_to_datetime(ns: int) -> datetime:
+    return datetime.fromtimestamp(ns // 10**9, tz=timezone.utc).replace(microsecond=(ns % 10**9) // 1000)
+
+
+# -- reading -------------------------------------------------------------------------------
+def read_files(spec: DataSpec) -> tuple[dict[str, list[Chunk]], tuple[dict, ...], dict[int, RawTable]]:
+    """Every file's rows of every wanted tag, stamped; and the sources read."""
+    wanted: dict[str, str | None] = {}
+    for tg in spec.tags:
+        wanted.setdefault(tg.tag, tg.quality_column)
+    text_time = spec.time.format in ("iso", "local")
+    chunks: dict[str, list[Chunk]] = {}
+    sources = []
+    tables: dict[int, RawTable] = {}
+    static_offset = 0
+    for k, path in enumerate(spec.files):
+        sources.append({"path": str(path), "sha256": file_sha256(path)})
+        table = read_table(path, spec.read, spec.time.column, wanted, text_time)
+        tables[k] = table
+        if not table.tags:
+            continue
+        used = np.unique(np.concatenate([tr.rows for tr in table.tags.values()]))
+        if table.time is None:
+            n = len(table.numbers)
+            t_all = (static_offset + np.arange(n, dtype=np.int64)) * 10**9
+            static_offset += n
+            gap_all = np.zeros(n, bool)
+        else:
+            groups = None
+            if spec.read.layout == "long":
+                groups = np.full(len(table.numbers), -1, np.int64)
+                for gi, tr in enumerate(table.tags.values()):
+                    groups[tr.rows] = gi
+                groups = groups[used]
+            place = Place(str(path), table.word, table.numbers[used], spec.time.column)
+            stamps = parse_stamps(table.time.iloc[used], spec.time, place, groups)
+            t_all = np.full(len(table.numbers), NAT, np.int64)
+            gap_all = np.zeros(len(table.numbers), bool)
+            t_all[used] = stamps.utc_ns
+            gap_all[used] = stamps.nonexistent
+        for name, tr in table.tags.items():
+            chunks.setdefault(name, []).append(Chunk(k, table.word, table.numbers[tr.rows], t_all[tr.rows],
+                                                     gap_all[tr.rows], tr.values, tr.quality))
+    return chunks, tuple(sources), tables
+
+
+def missing_tag_error(tg: TagSpec, spec: DataSpec, tables: dict[int, RawTable]) -> DataError:
+    names = sorted({c for tb in tables.values() for c in tb.columns if c != tb.time_column})
+    close = difflib.get_close_matches(tg.tag, names, n=3, cutoff=0.5)
+    lower = [n for n in names if n.lower() == tg.tag.lower() and n not in close]
+    close = lower + close
+    what = "tag column" if spec.read.layout == "long" else "column"
+    files = ", ".join(str(p) for p in spec.files)
+    hint = (f"close matches: {', '.join(repr(c) for c in close)}" if close else
+            f"the files hold: {', '.join(repr(n) for n in names[:15])}{' ...' if len(names) > 15 else ''}")
+    return DataError(f"tag '{tg.tag}' (model symbol '{tg.symbol}') is in no {what} of {files}", where=tg.where,
+                     hint=hint + "; correct the tag name in the config")
+
+
+# -- one tag ---------------------------------------------------------------------------------
+def _in_windows(t: np.ndarray, windows) -> np.ndarray:
+    hit = np.zeros(t.size, bool)
+    for lo, hi in windows:
+        hit |= (t >= lo) & (t < hi)
+    return hit
+
+
+def _concat(chunks: list[Chunk]):
+    cat = np.concatenate
+    file_idx = cat([np.full(c.values.size, c.file, np.int64) for c in chunks])
+    numbers = cat([c.numbers for c in chunks])
+    t = cat([c.t_ns for c in chunks])
+    gap = cat([c.nonexistent for c in chunks])
+    v = cat([c.values for c in chunks])
+    if any(c.quality is not None for c in chunks):
+        q = cat([c.quality if c.quality is not None else np.full(c.values.size, "", object) for c in chunks])
+    else:
+        q = None
+    return file_idx, numbers, t, gap, v, q
+
+
+def _dedupe(t, v, q):
+    """Indices to keep after a stable sort; counts of exact and conflicting duplicates, and
+    the (earlier, later) positions of the first conflict."""
+    order = np.argsort(t, kind="stable")
+    ts, vs = t[order], v[order]
+    same_t = np.zeros(ts.size, bool)
+    same_t[1:] = ts[1:] == ts[:-1]
+    if not same_t.any():
+        return order, 0, 0, None
+    # compare each duplicate with the first row of its time
+    first_of = np.maximum.accumulate(np.where(~same_t, np.arange(ts.size), 0))
+    same_v = vs == vs[first_of]
+    if q is not None:
+        qs = q[order]
+        same_v &= qs == qs[first_of]
+    exact = same_t & same_v
+    conflict = same_t & ~same_v
+    example = None
+    if conflict.any():
+        j = int(np.argmax(conflict))
+        example = (int(order[first_of[j]]), int(order[j]))
+    return order[~same_t], int(exact.sum()), int(conflict.sum()), example
+
+
+def process_tag(tg: TagSpec, chunks: list[Chunk], spec: DataSpec, conv: Conversion) -> TagData:
+    file_idx, numbers, t, gap, v, q = _concat(chunks)
+    has_value = np.isfinite(v)
+    blank = int((~has_value).sum())
+    rows_read = int(has_value.sum())
+    keep = has_value & ~gap
+    n_nonexistent = int((has_value & gap).sum())
+    outside = 0
+    if spec.select or spec.exclude:
+        inside = np.ones(t.size, bool)
+        if spec.select:
+            inside &= _in_windows(t, spec.select)
+        if spec.exclude:
+            inside &= ~_in_windows(t, spec.exclude)
+        outside = int((keep & ~inside).sum())
+        keep &= inside
+    idx = np.flatnonzero(keep)
+    t, v = t[idx], v[idx]
+    q = q[idx] if q is not None else None
+    file_idx, numbers = file_idx[idx], numbers[idx]
+    order, n_exact, n_conflict, example = _dedupe(t, v, q)
+    conflict_text = None
+    if example is not None:
+        a, b = example
+        conflict_text = (f"{spec.files[file_idx[a]]} {chunks[0].word} {numbers[a]} ({v[a]:g}) and "
+                         f"{spec.files[file_idx[b]]} {chunks[0].word} {numbers[b]} ({v[b]:g}) at {iso(int(t[a]))}")
+    t, v = t[order], v[order]
+    q = q[order] if q is not None else None
+    repeats = 0
+    if tg.logging == "exception" and v.size:
+        rep = held_repeats(v)
+        repeats = int(rep.sum())
+        t, v = t[~rep], v[~rep]
+        q = q[~rep] if q is not None else None
+    judged = {REASON_RANGE: out_of_range(v, tg.valid)}
+    bq = bad_quality(q, spec.good_quality)
+    if bq is not None:
+        judged[REASON_QUALITY] = bq
+    values = conv.apply(v)
+    pre_bad = judged[REASON_RANGE] | (bq if bq is not None else False)
+    if spec.spikes is not None:
+        floor = tg.deadband * abs(conv.scale)
+        judged[REASON_SPIKE] = spikes(t, values, ~pre_bad, spec.spikes.window, spec.spikes.threshold, floor)
+    pre_bad2 = pre_bad | judged.get(REASON_SPIKE, False)
+    st = stuck(t, v, ~pre_bad2, tg.deadband, spec.stuck_after)
+    flagged: dict[str, int] = {}
+    if spec.stuck_action == "mask":
+        judged[REASON_STUCK] = st
+    elif st.any():
+        flagged[REASON_STUCK] = int(st.sum())
+    masked_now, counts = count_first_reasons(judged)
+    masked = {REASON_NONEXISTENT: n_nonexistent} if n_nonexistent else {}
+    masked.update(counts)
+    stats = dict(files=tuple(dict.fromkeys(str(spec.files[c.file]) for c in chunks)), rows_read=rows_read,
+                 blank=blank, masked=masked, flagged=flagged, exact=n_exact, conflict=n_conflict,
+                 conflict_example=conflict_text, repeats=repeats, outside=outside)
+    return TagData(tg, t, values, ~masked_now, st, conv, stats)
+
+
+# -- gaps, segments ----------------------------------------------------------------------------
+def gap_limit(tg: TagSpec, spec: DataSpec) -> float | None:
+    if tg.max_gap is not None:
+        return tg.max_gap
+    if tg.logging == "exception":
+        return None
+    return spec.max_gap
+
+
+def gaps_of(t_ns: np.ndarray, limit_s: float | None) -> list[tuple[int, int]]:
+    """(last sample before, first sample after) of every gap longer than the limit."""
+    if limit_s is None or t_ns.size < 2:
+        return []
+    d = np.diff(t_ns)
+    hit = np.flatnonzero(d > limit_s * 1e9)
+    return [(int(t_ns[i]), int(t_ns[i + 1])) for i in hit]
+
+
+def merge_breaks(breaks: list[tuple[int, int]]) -> list[tuple[int, int]]:
+    out: list[list[int]] = []
+    for a, b in sorted(breaks):
+        if out and a <= out[-1][1]:
+            out[-1][1] = max(out[-1][1], b)
+        else:
+            out.append([a, b])
+    return [(a, b) for a, b in out]
+
+
+def segment_spans(start: int, end: int, breaks: list[tuple[int, int]]) -> list[tuple[int, int]]:
+    spans, cur = [], start
+    for a, b in merge_breaks(breaks):
+        if b <= cur or a >= end:
+            if a >= end:
+                break
+            continue
+        if a > cur:
+            spans.append((cur, a))
+        cur = max(cur, b)
+    if cur <= end:
+        spans.append((cur, end))
+    return spans
+
+
+# -- the whole experiment --------------------------------------------------------------------
+@dataclass(frozen=True)
+class Assembly:
+    spec: DataSpec
+    record: Record | None
+    report: DataReport
+    problems: tuple[DataError, ...]
+
+
+def _tag_report(td: TagData, spec: DataSpec, start: int | None, end: int | None) -> TagReport:
+    s, t, use = td.stats, td.t_ns, td.use
+    med = spread = cover = longest = None
+    n_gaps = 0
+    limit = gap_limit(td.spec, spec)
+    if t.size >= 2:
+        d = np.diff(t) / 1e9
+        med = float(np.median(d))
+        q75, q25 = np.percentile(d, [75, 25])
+        spread = float(q75 - q25)
+    tu = t[use]
+    if tu.size and start is not None and end is not None and end > start:
+        lim = limit if limit is not None else (3.0 * med if med else None)
+        gaps = gaps_of(tu, lim)
+        if limit is not None:
+            n_gaps = len(gaps)
+        lo, hi = max(int(tu[0]), start), min(int(tu[-1]), end)
+        covered = max(hi - lo, 0) - sum(b - a for a, b in gaps)
+        cover = 100.0 * covered / (end - start)
+        if gaps:
+            longest = max(b - a for a, b in gaps) / 1e9
+    return TagReport(
+        symbol=td.spec.symbol, tag=td.spec.tag, role=td.spec.role, files=s["files"], rows_read=s["rows_read"],
+        blank_cells=s["blank"], first_utc=iso(int(t[0])) if t.size else None,
+        last_utc=iso(int(t[-1])) if t.size else None, median_interval_s=med, interval_spread_s=spread,
+        coverage_pct=cover, valid=int(use.sum()), masked=s["masked"], flagged=s["flagged"],
+        exact_duplicates=s["exact"], conflicting_duplicates=s["conflict"], conflict_example=s["conflict_example"],
+        held_repeats_dropped=s["repeats"], outside_windows=s["outside"], conversion=td.conversion.text,
+        gap_limit_s=limit, gaps=n_gaps, longest_gap_s=longest)
+
+
+def _check_select(spec: DataSpec, tags: list[TagData], raw_spans: list[tuple[int, int]]) -> None:
+    """A selected window in which no tag has a sample is an error."""
+    from graybox.data.config import table_from_where
+
+    for lo, hi in spec.select:
+        if not any(((td.t_ns >= lo) & (td.t_ns < hi)).any() for td in tags):
+            first = min(a for a, _ in raw_spans) if raw_spans else None
+            last = max(b for _, b in raw_spans) if raw_spans else None
+            where = table_from_where({}, spec.where).where("select")
+            raise DataError(f"the window {iso(lo)} .. {iso(hi)} selects nothing", where=where,
+                            hint=f"the data run from {iso(first)} to {iso(last)} (UTC)")
+
+
+def assemble(spec: DataSpec) -> Assembly:
+    chunks, sources, tables = read_files(spec)
+    convs = {tg.symbol: tag_conversion(tg.units, tg.model_units, tag=tg.tag, where=tg.where) for tg in spec.tags}
+    tags: list[TagData] = []
+    raw_spans = []
+    for tg in spec.tags:
+        if tg.tag not in chunks:
+            raise missing_tag_error(tg, spec, tables)
+        for c in chunks[tg.tag]:
+            ok = c.t_ns[~c.nonexistent & np.isfinite(c.values)]
+            if ok.size:
+                raw_spans.append((int(ok.min()), int(ok.max())))
+        tags.append(process_tag(tg, chunks[tg.tag], spec, convs[tg.symbol]))
+    if spec.select:
+        _check_select(spec, tags, raw_spans)
+    problems: list[DataError] = []
+    nonempty = [td for td in tags if td.t_ns.size]
+    start = min(int(td.t_ns[0]) for td in nonempty) if nonempty else None
+    end = max(int(td.t_ns[-1]) for td in nonempty) if nonempty else None
+    for td in tags:
+        if td.t_ns.size == 0:
+            problems.append(DataError(f"{td.spec.role} '{td.spec.symbol}' (tag '{td.spec.tag}') has no sample left",
+                                      where=td.spec.where, hint="check the selected and excluded windows"))
+        elif not td.use.any():
+            reasons = ", ".join(f"{n} {r}" for r, n in td.stats["masked"].items())
+            problems.append(DataError(
+                f"every sample of {td.spec.role} '{td.spec.symbol}' (tag '{td.spec.tag}') is masked ({reasons})",
+                where=td.spec.where, hint="check good_quality, the valid range and the units of that tag"))
+    segments: list[tuple[int, int]] = []
+    notes: list[str] = []
+    record = None
+    if not problems and start is not None:
+        breaks = []
+        for td in tags:
+            if td.spec.role == ROLE_INPUT:
+                breaks += gaps_of(td.t_ns[td.use], gap_limit(td.spec, spec))
+        breaks += [(lo, hi) for lo, hi in spec.exclude if hi > start and lo < end]
+        sel = sorted(spec.select)
+        breaks += [(sel[i][1], sel[i + 1][0]) for i in range(len(sel) - 1) if sel[i + 1][0] > sel[i][1]]
+        outs = [td for td in tags if td.spec.role != ROLE_INPUT]
+        for lo, hi in segment_spans(start, end, breaks):
+            lacking = [td.spec.symbol for td in outs if not (td.use & (td.t_ns >= lo) & (td.t_ns <= hi)).any()]
+            if lacking:
+                notes.append(f"segment {iso(lo)} .. {iso(hi)} dropped: no valid observation of "
+                             f"{', '.join(lacking)}")
+            else:
+                segments.append((lo, hi))
+        if not segments:
+            problems.append(DataError("no segment holds a valid observation of every output",
+                                      where=spec.where, hint="widen the windows or raise max_gap"))
+        else:
+            record = _record(spec, tags, start, segments, sources, notes)
+    seg_reports = tuple(
+        SegmentReport(i + 1, iso(lo), iso(hi), (hi - lo) / 1e9,
+                      int(sum(((td.t_ns >= lo) & (td.t_ns <= hi) & td.use).sum() for td in tags
+                              if td.spec.role != ROLE_INPUT)))
+        for i, (lo, hi) in enumerate(segments))
+    holdout = spec.holdout.isoformat() if isinstance(spec.holdout, datetime) else spec.holdout
+    report = DataReport(
+        experiment=spec.name, sources=sources, tags=tuple(_tag_report(td, spec, start, end) for td in tags),
+        start_utc=iso(start), end_utc=iso(end), segments=seg_reports,
+        select=tuple((iso(a), iso(b)) for a, b in spec.select), exclude=tuple((iso(a), iso(b)) for a, b in spec.exclude),
+        holdout=holdout, problems=tuple(p.render() for p in problems), notes=tuple(notes))
+    return Assembly(spec, record, report, tuple(problems))
+
+
+def _record(spec: DataSpec, tags: list[TagData], start: int, segments, sources, notes) -> Record:
+    inputs, outputs = {}, {}
+    for td in tags:
+        t = (td.t_ns - start) / 1e9
+        name, units = td.spec.symbol, td.spec.model_units
+        if td.spec.role == ROLE_INPUT:
+            inputs[name] = InputSeries(name, t, np.where(td.use, td.values, np.nan), hold=td.spec.hold, units=units)
+        else:
+            outputs[name] = OutputSeries(name, t, td.values, mask=td.use, units=units)
+    segs = tuple(Segment((lo - start) / 1e9, (hi - start) / 1e9) for lo, hi in segments)
+    return Record(spec.name, ns_to_datetime(start), inputs, outputs, segs, tuple(sources), tuple(notes))
+
+
+# -- public ------------------------------------------------------------------------------------
+def load_experiment(table: dict, name: str, *, symbols: Mapping[str, SymbolInfo], base_dir: Path,
+                    where: str) -> tuple[Record, DataReport]:
+    """Read, check and convert one experiment's data into a Record in model units.
+
+    Raises ConfigError for mistakes in the table, DataError for problems with the data
+    (each located at the file and line, column or tag)."""
+    spec = parse_data_table(table, name, symbols=symbols, base_dir=Path(base_dir), where=where)
+    result = assemble(spec)
+    if result.problems:
+        raise result.problems[0]
+    assert result.record is not None
+    return result.record, result.report
+
+
+def check_experiment(table: dict, name: str, *, symbols: Mapping[str, SymbolInfo], base_dir: Path,
+                     where: str, sensitivity_fn=None) -> DataReport:
+    """Read and validate without fitting.  Problems that stop a fit (an output with every
+    sample masked, no usable segment) are listed in ``report.problems`` (``report.ok`` is
+    False); errors that stop reading are raised.  With ``sensitivity_fn`` (see
+    :func:`graybox.data.windows.rank_windows`) and an ``[informative]`` table or its defaults,
+    the informative windows are ranked too."""
+    spec = parse_data_table(table, name, symbols=symbols, base_dir=Path(base_dir), where=where)
+    result = assemble(spec)
+    report = result.report
+    if sensitivity_fn is not None and result.record is not None:
+        from graybox.data.windows import rank_windows
+
+        search = spec.search
+        window = search.window if search else 86400.0
+        step = search.step if search else window / 4
+        top = search.top if search else 5
+        noise = dict(search.noise) if search else None
+        report = report.with_windows(rank_windows(result.record, sensitivity_fn, window=window, step=step, top=top,
+                                                  noise=noise))
+    return report
+
+
+def data_spec(table: dict, name: str, *, symbols: Mapping[str, SymbolInfo], base_dir: Path, where: str) -> DataSpec:
+    """The validated data section (holdout, informative-window settings, ...), without reading files."""
+    return parse_data_table(table, name, symbols=symbols, base_dir=Path(base_dir), where=where)

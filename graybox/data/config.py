@@ -1,0 +1,470 @@
+"""The data section of a graybox config: which files, how to read them, which tag feeds
+which model symbol, in which units, and how to judge their quality.
+
+One experiment is a ``[data]`` table (named "main"); several are ``[experiments.NAME]``
+tables with the same keys.  Every key, with its default::
+
+    [data]
+    files = ["vessel_log.csv"]        # paths or glob patterns, relative to the config's folder;
+                                      # several files feed one experiment (per tag, per month)
+    format = "csv"                    # csv | parquet | excel; default: from the file ending
+    layout = "wide"                   # wide: a time column and a column per tag
+                                      # long: a time column, a tag column, a value column
+    # -- reading text and spreadsheets
+    delimiter = ","                   # csv field separator (";" for many European exports)
+    decimal = "."                     # decimal mark ("," with delimiter = ";")
+    encoding = "utf-8"                # a byte-order mark is skipped
+    header_row = 1                    # the line (csv) or row (excel) holding column names
+    skip_after_header = 0             # lines between the header and the data (units rows)
+    no_value = ["", "NaN", "nan", "NA", "#N/A"]   # cell texts meaning "no sample here"
+    sheet = "Sheet1"                  # excel: the sheet; default the first
+    # -- time stamps
+    time_column = "timestamp"         # omit for a static table: rows become 0, 1, 2, ... s
+    time_format = "iso"               # iso:        ISO 8601 text, each stamp with its offset (Z, +01:00)
+                                      # local:      wall-clock text (or naive stored times) in `timezone`
+                                      # epoch_s:    seconds since 1970-01-01T00:00Z
+                                      # serial_1900 / serial_1904: spreadsheet day numbers, wall-clock
+                                      #             in `timezone`, in that date system
+    timezone = "Europe/Berlin"        # an IANA zone; required by local and serial stamps
+    date_order = "ymd"                # local text only: ymd | dmy | mdy; never guessed
+    clock = "24h"                     # local text only: 24h | 12h (12h stamps end in AM/PM)
+    # -- long layout columns
+    tag_column = "tag"
+    value_column = "value"
+    quality_column = "quality"        # optional; in a wide table give it per tag instead
+    good_quality = ["good"]           # quality texts (case-insensitive) or codes that count as good
+    # -- physical references (required only when a tag needs them)
+    atmosphere = "101.325 kPa"        # for gauge pressures
+    standard_pressure = "101.325 kPa" # for standard volumetric flows
+    standard_temperature = "0 degC"
+    # -- gaps, windows, checks
+    max_gap = "15 min"                # an input gap longer than this splits the record
+    select = [["2026-01-05T00:00Z", "2026-01-20T00:00Z"]]   # keep only these spans
+    exclude = [["2026-01-11T06:00Z", "2026-01-11T18:00Z"]]  # drop these (shutdown, cleaning)
+    holdout = 0.25                    # last fraction (or from an instant) kept for validation
+    stuck_after = "2 h"               # a run of samples flat to within the deadband this long
+    stuck_action = "flag"             # flag | mask
+    [data.spikes]                     # optional robust spike filter (masks)
+    window = "30 min"                 # centred window of the running median
+    threshold = 6                     # in robust standard deviations (1.4826 * MAD)
+    [data.informative]                # the window finder of `graybox check`
+    window = "1 day"
+    step = "6 h"
+    top = 5
+    noise = { T = 0.2 }               # output noise (model units) weighting each output; default 1
+
+    [data.tags]
+    F = "FI_200"                      # shorthand: tag name, already in model units
+    [data.tags.T]
+    tag = "TI_101"
+    units = "degF"                    # what the historian logs
+    temperature = "reading"           # reading | difference (needed when an offset scale is involved)
+    pressure = "gauge"                # gauge | absolute (psig, barg, kPag, ... imply gauge)
+    flow_basis = "standard"           # standard | actual (Nm3/h, scfm, ... imply standard)
+    molar_mass = "28.96 g/mol"        # standard flow into a mass flow
+    span = [0, 250]                   # percent-of-span tags: units = "%", span in span_units
+    span_units = "degF"
+    valid = [0, 300]                  # valid range, in the tag's own units (as logged)
+    deadband = 0.5                    # logging deadband, tag units (judges stuck sensors)
+    logging = "sampled"               # sampled | exception (report-by-exception; repeats are holds)
+    quality_column = "TI_101.Q"       # wide layout: this tag's quality column
+    max_gap = "1 h"                   # this input's own gap limit
+    atmosphere = "14.5 psi"           # per-tag overrides of the physical references
+"""
+
+from __future__ import annotations
+
+import glob
+import re
+import zoneinfo
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Mapping
+
+import numpy as np
+
+from graybox.configkit import Table, parse_duration
+from graybox.data.record import HOLD_MODES, HOLD_PREVIOUS
+from graybox.data.units import TagUnits
+from graybox.errors import ConfigError, DataError
+
+ROLE_INPUT = "input"
+ROLE_OUTPUT = "output"
+LAYOUTS = ("wide", "long")
+FORMATS = ("csv", "parquet", "excel")
+TIME_FORMATS = ("iso", "local", "epoch_s", "serial_1900", "serial_1904")
+DATE_ORDERS = ("ymd", "dmy", "mdy")
+CLOCKS = ("24h", "12h")
+STUCK_ACTIONS = ("flag", "mask")
+LOGGING = ("sampled", "exception")
+DEFAULT_NO_VALUE = ("", "NaN", "nan", "NA", "#N/A")
+
+DATA_KEYS = (
+    "files", "format", "layout", "delimiter", "decimal", "encoding", "header_row", "skip_after_header", "no_value",
+    "sheet", "time_column", "time_format", "timezone", "date_order", "clock", "tag_column", "value_column",
+    "quality_column", "good_quality", "atmosphere", "standard_pressure", "standard_temperature", "max_gap",
+    "select", "exclude", "holdout", "stuck_after", "stuck_action", "spikes", "informative", "tags",
+)
+TAG_KEYS = (
+    "tag", "units", "temperature", "pressure", "flow_basis", "molar_mass", "span", "span_units", "valid", "deadband",
+    "logging", "quality_column", "max_gap", "atmosphere", "standard_pressure", "standard_temperature",
+)
+SPIKE_KEYS = ("window", "threshold")
+INFORMATIVE_KEYS = ("window", "step", "top", "noise")
+
+
+@dataclass(frozen=True)
+class SymbolInfo:
+    """What the model says about a symbol that data may feed."""
+
+    name: str
+    role: str  # "input" | "output"
+    units: str  # pint-parsable, model units
+    hold: str = HOLD_PREVIOUS  # inputs: "previous" | "linear"
+
+    def __post_init__(self):
+        if self.role not in (ROLE_INPUT, ROLE_OUTPUT):
+            raise ValueError(f"symbol '{self.name}': role must be 'input' or 'output', got {self.role!r}")
+        if self.hold not in HOLD_MODES:
+            raise ValueError(f"symbol '{self.name}': hold must be one of {HOLD_MODES}, got {self.hold!r}")
+
+
+@dataclass(frozen=True)
+class TagSpec:
+    symbol: str
+    tag: str
+    role: str
+    model_units: str
+    hold: str
+    units: TagUnits
+    valid: tuple[float, float] | None
+    deadband: float
+    logging: str
+    quality_column: str | None
+    max_gap: float | None  # seconds; None = the experiment's
+    where: str  # location of this tag's table, for messages
+
+
+@dataclass(frozen=True)
+class ReadOptions:
+    file_format: str | None  # None = from each file's ending
+    layout: str
+    delimiter: str
+    decimal: str
+    encoding: str
+    header_row: int
+    skip_after_header: int
+    no_value: tuple[str, ...]
+    sheet: str | None
+    tag_column: str
+    value_column: str
+    quality_column: str | None
+
+
+@dataclass(frozen=True)
+class TimeSpec:
+    column: str | None
+    format: str
+    timezone: str | None
+    date_order: str | None
+    clock: str
+
+
+@dataclass(frozen=True)
+class SpikeSpec:
+    window: float  # seconds
+    threshold: float
+
+
+@dataclass(frozen=True)
+class SearchSpec:
+    window: float
+    step: float
+    top: int
+    noise: Mapping[str, float] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class DataSpec:
+    name: str
+    where: str
+    files: tuple[Path, ...]
+    read: ReadOptions
+    time: TimeSpec
+    good_quality: frozenset[str]
+    tags: tuple[TagSpec, ...]
+    max_gap: float | None
+    select: tuple[tuple[int, int], ...]  # UTC ns, half-open [start, end)
+    exclude: tuple[tuple[int, int], ...]
+    holdout: float | datetime | None
+    stuck_after: float
+    stuck_action: str
+    spikes: SpikeSpec | None
+    search: SearchSpec | None
+
+    def tag_of(self, symbol: str) -> TagSpec:
+        return next(t for t in self.tags if t.symbol == symbol)
+
+
+def table_from_where(table: dict, where: str) -> Table:
+    """A configkit Table located by a prefix like ``configs/vessel.toml [data]`` (the file's
+    lines are then found for each key)."""
+    m = re.match(r"^(?P<file>.*?)(?::\d+)?\s*\[(?P<path>[^\]]+)\]\s*$", where or "")
+    if m:
+        path = tuple(p.strip().strip('"') for p in m.group("path").split("."))
+        file = Path(m.group("file")) if m.group("file") else None
+        return Table(table, path, file)
+    return Table(table, ("data",), Path(where) if where else None)
+
+
+def _duration(t: Table, key: str, default=None) -> float | None:
+    if key not in t:
+        return default
+    return parse_duration(t.get(key), t.where(key))
+
+
+def _quantity_text(t: Table, key: str, default=None) -> str | None:
+    if key not in t:
+        return default
+    value = t.get(key)
+    if not isinstance(value, str):
+        raise t.error(key, f"must be a quantity as text, e.g. \"101.325 kPa\", got {value!r}")
+    return value
+
+
+def parse_instant(text, tz: str | None, where: str) -> int:
+    """UTC nanoseconds of a window bound: ISO 8601 with an offset, or wall-clock ISO in the
+    declared time zone (an instant that is ambiguous there needs an offset)."""
+    if isinstance(text, datetime):  # TOML offset date-times arrive as datetimes
+        dt = text
+    elif isinstance(text, str):
+        try:
+            dt = datetime.fromisoformat(text.strip().replace("Z", "+00:00"))
+        except ValueError:
+            raise ConfigError(f"'{text}' is not an ISO 8601 date and time", where=where,
+                              hint="write e.g. \"2026-01-05T06:00Z\" or \"2026-01-05T06:00+01:00\"") from None
+    else:
+        raise ConfigError(f"a window bound must be a date and time, got {text!r}", where=where)
+    if dt.tzinfo is None:
+        if tz is None:
+            raise ConfigError(f"'{text}' has no offset and no timezone is declared", where=where,
+                              hint="add an offset (\"Z\", \"+01:00\") or declare timezone = \"...\"")
+        zone = zoneinfo.ZoneInfo(tz)
+        a, b = dt.replace(tzinfo=zone, fold=0), dt.replace(tzinfo=zone, fold=1)
+        if a.utcoffset() != b.utcoffset():
+            raise ConfigError(f"'{text}' happens twice in {tz} (clocks go back)", where=where,
+                              hint="write it with its offset to say which")
+        dt = a
+        if dt.astimezone(timezone.utc).astimezone(zone).replace(tzinfo=None) != dt.replace(tzinfo=None):
+            raise ConfigError(f"'{text}' does not exist in {tz} (clocks go forward)", where=where)
+    delta = dt.astimezone(timezone.utc) - datetime(1970, 1, 1, tzinfo=timezone.utc)
+    return (delta.days * 86400 + delta.seconds) * 10**9 + delta.microseconds * 1000
+
+
+def _windows(t: Table, key: str, tz: str | None) -> tuple[tuple[int, int], ...]:
+    if key not in t:
+        return ()
+    raw = t.get(key)
+    if isinstance(raw, list) and len(raw) == 2 and all(isinstance(v, (str, datetime)) for v in raw):
+        raw = [raw]
+    if not isinstance(raw, list) or not all(isinstance(w, list) and len(w) == 2 for w in raw):
+        raise t.error(key, f"must be a list of [start, end] pairs, got {raw!r}",
+                      hint=f"{key} = [[\"2026-01-05T00:00Z\", \"2026-01-06T00:00Z\"]]")
+    out = []
+    for a, b in raw:
+        lo, hi = parse_instant(a, tz, t.where(key)), parse_instant(b, tz, t.where(key))
+        if not hi > lo:
+            raise t.error(key, f"window [{a}, {b}] ends before it starts")
+        out.append((lo, hi))
+    return tuple(out)
+
+
+def _holdout(t: Table, tz: str | None):
+    if "holdout" not in t:
+        return None
+    v = t.get("holdout")
+    if isinstance(v, (int, float)) and not isinstance(v, bool):
+        if not 0.0 < v < 1.0:
+            raise t.error("holdout", f"a fraction must lie between 0 and 1, got {v}")
+        return float(v)
+    ns = parse_instant(v, tz, t.where("holdout"))
+    return datetime.fromtimestamp(ns / 1e9, tz=timezone.utc)
+
+
+def _files(t: Table, base_dir: Path) -> tuple[Path, ...]:
+    entries = t.string_list("files")
+    if not entries:
+        raise t.error("files", "lists no file", hint="files = [\"export.csv\"]")
+    out: list[Path] = []
+    for entry in entries:
+        p = Path(entry).expanduser()
+        full = p if p.is_absolute() else base_dir / p
+        if any(c in entry for c in "*?["):
+            hits = sorted(Path(h) for h in glob.glob(str(full)))
+            if not hits:
+                raise DataError(f"no file matches '{entry}'", where=t.where("files"),
+                                hint=f"patterns resolve against {base_dir}")
+            out.extend(hits)
+        else:
+            if not full.is_file():
+                raise DataError(f"file not found: {full}", where=t.where("files"),
+                                hint="relative paths resolve against the config file's folder")
+            out.append(full)
+    return tuple(dict.fromkeys(out))
+
+
+def _tag(t: Table, symbol: str, info: SymbolInfo, defaults: dict) -> TagSpec:
+    raw = t.data.get(symbol)
+    if isinstance(raw, str):
+        sub = Table({"tag": raw}, (*t.path, symbol), t.file)
+    elif isinstance(raw, dict):
+        sub = t.sub(symbol)
+    else:
+        raise t.error(symbol, f"must be a tag name or a table, got {raw!r}",
+                      hint=f"{symbol} = \"TI_101\" or [{'.'.join((*t.path, symbol))}] with tag = ...")
+    sub.check_keys(TAG_KEYS)
+    tag = sub.string("tag")
+    if not tag.strip():
+        raise sub.error("tag", "is empty")
+    units_text = sub.string("units", info.units)
+    temperature = sub.string("temperature", None, choices=("reading", "difference")) if "temperature" in sub else None
+    pressure = sub.string("pressure", None, choices=("gauge", "absolute")) if "pressure" in sub else None
+    basis = sub.string("flow_basis", None, choices=("standard", "actual")) if "flow_basis" in sub else None
+    span = sub.pair("span") if "span" in sub else None
+    valid = sub.pair("valid") if "valid" in sub else None
+    deadband = sub.number("deadband", 0.0, minimum=0.0)
+    logging = sub.string("logging", "sampled", choices=LOGGING)
+    quality = sub.string("quality_column", None) if "quality_column" in sub else None
+    max_gap = _duration(sub, "max_gap")
+    units = TagUnits(
+        units=units_text, temperature=temperature, pressure=pressure, flow_basis=basis, span=span,
+        span_units=sub.string("span_units", None) if "span_units" in sub else None,
+        molar_mass=_quantity_text(sub, "molar_mass"),
+        atmosphere=_quantity_text(sub, "atmosphere", defaults["atmosphere"]),
+        standard_pressure=_quantity_text(sub, "standard_pressure", defaults["standard_pressure"]),
+        standard_temperature=_quantity_text(sub, "standard_temperature", defaults["standard_temperature"]),
+    )
+    return TagSpec(symbol, tag.strip(), info.role, info.units, info.hold, units, valid, float(deadband), logging,
+                   quality, max_gap, sub.where("units" if "units" in sub else None))
+
+
+def parse_data_table(table: dict, name: str, *, symbols: Mapping[str, SymbolInfo], base_dir: Path,
+                     where: str) -> DataSpec:
+    """Validate one experiment's table; every error is a located ConfigError (or a DataError
+    for a file that is not there)."""
+    t = table_from_where(table, where)
+    if not isinstance(table, dict):
+        raise ConfigError(f"the data section must be a table, got {type(table).__name__}", where=where)
+    t.check_keys(DATA_KEYS)
+    files = _files(t, Path(base_dir))
+    fmt = t.string("format", None, choices=FORMATS) if "format" in t else None
+    layout = t.string("layout", "wide", choices=LAYOUTS)
+    delimiter = t.string("delimiter", ",")
+    if len(delimiter) != 1 and delimiter != "\\t":
+        raise t.error("delimiter", f"must be one character, got {delimiter!r}", hint="\",\", \";\", \"\\t\" or \"|\"")
+    delimiter = "\t" if delimiter == "\\t" else delimiter
+    decimal = t.string("decimal", ".", choices=(".", ","))
+    if decimal == delimiter:
+        raise t.error("decimal", "is the same character as the delimiter", hint="delimiter = \";\" with decimal = \",\"")
+    encoding = t.string("encoding", "utf-8")
+    try:
+        import codecs
+
+        codecs.lookup(encoding)
+    except LookupError:
+        raise t.error("encoding", f"'{encoding}' is not a known text encoding",
+                      hint="e.g. \"utf-8\", \"cp1252\", \"latin-1\", \"utf-16\"") from None
+    if encoding.lower().replace("_", "-") in ("utf-8", "utf8"):
+        encoding = "utf-8-sig"
+    header_row = t.number("header_row", 1, integer=True, minimum=1)
+    skip = t.number("skip_after_header", 0, integer=True, minimum=0)
+    no_value = tuple(t.string_list("no_value", list(DEFAULT_NO_VALUE)))
+    sheet = t.string("sheet", None) if "sheet" in t else None
+
+    time_column = t.string("time_column", None) if "time_column" in t else None
+    tfmt = t.string("time_format", "iso", choices=TIME_FORMATS)
+    tz = t.string("timezone", None) if "timezone" in t else None
+    if tz is not None:
+        try:
+            zoneinfo.ZoneInfo(tz)
+        except (zoneinfo.ZoneInfoNotFoundError, ValueError):
+            import difflib
+
+            close = difflib.get_close_matches(tz, sorted(zoneinfo.available_timezones()), n=3)
+            raise t.error("timezone", f"'{tz}' is not an IANA time zone",
+                          hint=(f"did you mean {', '.join(close)}? " if close else "") + "e.g. \"Europe/Berlin\", "
+                               "\"America/Chicago\", \"UTC\"") from None
+    if time_column is not None and tfmt in ("local", "serial_1900", "serial_1904") and tz is None:
+        raise t.error("time_format", f"'{tfmt}' stamps are wall-clock times; the time zone is needed",
+                      hint="declare timezone = \"Europe/Berlin\" (an IANA name), or \"UTC\" if they are UTC")
+    date_order = t.string("date_order", None, choices=DATE_ORDERS) if "date_order" in t else None
+    clock = t.string("clock", "24h", choices=CLOCKS)
+
+    tag_column = t.string("tag_column", "tag")
+    value_column = t.string("value_column", "value")
+    quality_column = t.string("quality_column", None) if "quality_column" in t else None
+    good = t.get("good_quality", ["good"])
+    if isinstance(good, (str, int)) and not isinstance(good, bool):
+        good = [good]
+    if not isinstance(good, list) or not all(isinstance(g, (str, int)) and not isinstance(g, bool) for g in good):
+        raise t.error("good_quality", f"must be a list of quality texts or codes, got {good!r}")
+    good_set = frozenset(normalize_quality(g) for g in good)
+
+    defaults = {k: _quantity_text(t, k) for k in ("atmosphere", "standard_pressure", "standard_temperature")}
+    max_gap = _duration(t, "max_gap")
+    select = _windows(t, "select", tz)
+    exclude = _windows(t, "exclude", tz)
+    holdout = _holdout(t, tz)
+    stuck_after = _duration(t, "stuck_after", 7200.0)
+    stuck_action = t.string("stuck_action", "flag", choices=STUCK_ACTIONS)
+    spikes = None
+    if "spikes" in t:
+        st = t.sub("spikes")
+        st.check_keys(SPIKE_KEYS)
+        spikes = SpikeSpec(parse_duration(st.get("window"), st.where("window")),
+                           st.number("threshold", 6.0, positive=True))
+    search = None
+    if "informative" in t:
+        it = t.sub("informative")
+        it.check_keys(INFORMATIVE_KEYS)
+        noise_t = it.sub("noise")
+        noise = {k: noise_t.number(k, positive=True) for k in noise_t.keys()}
+        search = SearchSpec(_duration(it, "window", 86400.0), _duration(it, "step", 21600.0),
+                            it.number("top", 5, integer=True, minimum=1), noise)
+
+    tags_t = t.sub("tags", required=True)
+    missing = [s for s in symbols if s not in tags_t]
+    if missing:
+        raise tags_t.error(None, f"no tag is mapped to the model {'symbols' if len(missing) > 1 else 'symbol'} "
+                                 f"{', '.join(repr(m) for m in missing)}",
+                           hint=f"add e.g. {missing[0]} = \"TAG_NAME\" under [{'.'.join(tags_t.path)}]")
+    unknown = [k for k in tags_t.keys() if k not in symbols]
+    if unknown:
+        import difflib
+
+        close = difflib.get_close_matches(unknown[0], list(symbols), n=1)
+        raise tags_t.error(unknown[0], "is not an input or measured output of the model",
+                           hint=(f"did you mean '{close[0]}'? " if close else "")
+                           + f"the model's data symbols: {', '.join(symbols)}")
+    tags = tuple(_tag(tags_t, s, symbols[s], defaults) for s in symbols)
+    if layout == "long" and any(tg.quality_column for tg in tags):
+        bad = next(tg for tg in tags if tg.quality_column)
+        raise ConfigError("a per-tag quality_column is for wide tables; a long table has one quality column",
+                          where=bad.where, hint="set quality_column in the data table instead")
+    read = ReadOptions(fmt, layout, delimiter, decimal, encoding, int(header_row), int(skip), no_value, sheet,
+                       tag_column, value_column, quality_column)
+    return DataSpec(name, where, files, read, TimeSpec(time_column, tfmt, tz, date_order, clock), good_set, tags,
+                    max_gap, select, exclude, holdout, float(stuck_after), stuck_action, spikes, search)
+
+
+def normalize_quality(value) -> str:
+    """Quality flags compare as stripped, lower-case text; whole numbers as integers ('192')."""
+    if isinstance(value, (int, np.integer)):
+        return str(int(value))
+    if isinstance(value, float):
+        return str(int(value)) if value.is_integer() else str(value)
+    text = str(value).strip().lower()
+    if re.fullmatch(r"[+-]?\d+\.0*", text):
+        return text.split(".")[0]
+    return text

@@ -1,0 +1,278 @@
+"""Readers: one export file (CSV, Parquet, Excel; wide or long) into raw tag samples.
+
+A reader opens its file read-only, reads only the columns it needs and returns a
+:class:`RawTable`: the time column as stored, each wanted tag's values as numbers (``NaN``
+where a cell holds no value), its quality texts if any, and the 1-based line (CSV) or row
+(Parquet, Excel) of every sample, so that every later message can point at the file.
+"""
+
+from __future__ import annotations
+
+import difflib
+import hashlib
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from graybox.data.config import ReadOptions
+from graybox.errors import DataError
+
+
+@dataclass(frozen=True)
+class TagRaw:
+    """One tag's rows from one file, in recorded order."""
+
+    tag: str
+    values: np.ndarray  # float, NaN = no value in that cell
+    quality: np.ndarray | None  # normalized quality text per row, or None
+    rows: np.ndarray  # positions into the table's time column
+
+
+@dataclass(frozen=True)
+class RawTable:
+    path: Path
+    word: str  # "line" or "row"
+    numbers: np.ndarray  # 1-based line/row number of each table row
+    time: pd.Series | None  # raw time column (None for a static table)
+    tags: dict[str, TagRaw]
+    columns: tuple[str, ...]  # the tag names (long) or column names (wide) the file has
+    time_column: str | None
+
+    def place(self, i: int, column: str) -> str:
+        return f"{self.path} {self.word} {int(self.numbers[i])} column '{column}'"
+
+
+def file_sha256(path: Path) -> str:
+    with open(path, "rb") as fh:  # read-only
+        return hashlib.file_digest(fh, "sha256").hexdigest()
+
+
+def file_format(path: Path, opts: ReadOptions) -> str:
+    if opts.file_format:
+        return opts.file_format
+    suffix = path.suffix.lower()
+    if suffix in (".parquet", ".pq"):
+        return "parquet"
+    if suffix in (".xlsx", ".xlsm"):
+        return "excel"
+    return "csv"
+
+
+def read_table(path: Path, opts: ReadOptions, time_column: str | None, wanted: dict[str, str | None],
+               text_time: bool) -> RawTable:
+    """Read one file.  ``wanted`` maps each tag the experiment needs to its quality column
+    (wide layout) or None; tags absent from this file are simply not in the result (several
+    files may feed one experiment).  ``text_time``: keep the time column as text."""
+    fmt = file_format(path, opts)
+    if fmt == "csv":
+        frame, word, numbers = _csv_frame(path, opts, time_column, wanted, text_time)
+    elif fmt == "parquet":
+        frame, word, numbers = _parquet_frame(path, opts, time_column, wanted)
+    else:
+        frame, word, numbers = _excel_frame(path, opts, time_column, wanted)
+    return _to_raw(path, frame, word, numbers, opts, time_column, wanted)
+
+
+# -- the three storage formats ---------------------------------------------------------------
+def _needed_columns(header: list[str], opts: ReadOptions, time_column: str | None, wanted: dict) -> list[str]:
+    if opts.layout == "long":
+        cols = [opts.tag_column, opts.value_column] + ([opts.quality_column] if opts.quality_column else [])
+    else:
+        cols = [t for t in wanted if t in header]
+        cols += [q for t, q in wanted.items() if q and t in header]
+    if time_column:
+        cols = [time_column] + cols
+    return list(dict.fromkeys(cols))
+
+
+def _require_columns(path: Path, header: list[str], needed: list[str], opts: ReadOptions, where_word: str) -> None:
+    for col in needed:
+        if col not in header:
+            close = difflib.get_close_matches(col, header, n=3, cutoff=0.5)
+            hint = (f"did you mean {', '.join(repr(c) for c in close)}? " if close else "") + \
+                f"its columns: {', '.join(repr(h) for h in header[:12])}{' ...' if len(header) > 12 else ''}"
+            if len(header) == 1 and any(d in header[0] for d in ";,\t|"):
+                hint += f"; the header looks like one column: is the delimiter '{opts.delimiter}' right?"
+            raise DataError(f"no column '{col}' in the {where_word}", where=str(path), hint=hint)
+
+
+def _csv_frame(path: Path, opts: ReadOptions, time_column, wanted, text_time):
+    if path.stat().st_size == 0:
+        raise DataError("the file is empty", where=str(path), hint="export the data again")
+    skip_rows = list(range(opts.header_row - 1)) + [opts.header_row + k for k in range(opts.skip_after_header)]
+    common = dict(sep=opts.delimiter, decimal=opts.decimal, encoding=opts.encoding, skiprows=skip_rows,
+                  header=0, keep_default_na=False, na_values=list(opts.no_value), skip_blank_lines=False)
+    try:
+        with open(path, "rb") as fh:  # read-only
+            header = [str(c).strip() for c in pd.read_csv(fh, nrows=0, **common).columns]
+    except pd.errors.EmptyDataError:
+        raise DataError("the file is empty" if opts.header_row == 1 else
+                        f"the file ends before its header line {opts.header_row}", where=str(path),
+                        hint="export the data again, or check header_row") from None
+    except UnicodeDecodeError as exc:
+        raise DataError(f"the file is not {opts.encoding} text (byte {exc.start})", where=str(path),
+                        hint="set encoding = \"cp1252\", \"latin-1\" or \"utf-16\" to match the export") from None
+    except pd.errors.ParserError as exc:
+        raise DataError(f"the file cannot be read as delimited text: {exc}", where=str(path)) from None
+    needed = _needed_columns(header, opts, time_column, wanted)
+    _require_columns(path, header, needed, opts, f"header (line {opts.header_row})")
+    dtypes = {}
+    if time_column and text_time:
+        dtypes[time_column] = "str"
+    if opts.layout == "long":
+        dtypes[opts.tag_column] = "str"
+        if opts.quality_column:
+            dtypes[opts.quality_column] = "str"
+    else:
+        for t, q in wanted.items():
+            if q and q in header:
+                dtypes[q] = "str"
+    try:
+        with open(path, "rb") as fh:
+            raw_cols = pd.read_csv(fh, nrows=0, **common).columns
+            strip_map = {str(c).strip(): c for c in raw_cols}
+            fh.seek(0)
+            frame = pd.read_csv(fh, usecols=[strip_map[c] for c in needed],
+                                dtype={strip_map[k]: v for k, v in dtypes.items()}, **common)
+    except UnicodeDecodeError as exc:
+        raise DataError(f"the file is not {opts.encoding} text (byte {exc.start})", where=str(path),
+                        hint="set encoding to match the export") from None
+    except pd.errors.ParserError as exc:
+        raise DataError(f"the file cannot be read as delimited text: {exc}", where=str(path),
+                        hint="check delimiter and quoting") from None
+    frame.columns = [str(c).strip() for c in frame.columns]
+    first_data_line = opts.header_row + opts.skip_after_header + 1
+    numbers = np.arange(len(frame), dtype=np.int64) + first_data_line
+    return frame, "line", numbers
+
+
+def _parquet_frame(path: Path, opts: ReadOptions, time_column, wanted):
+    import pyarrow.parquet as pq
+
+    try:
+        with open(path, "rb") as fh:
+            pf = pq.ParquetFile(fh)
+            header = list(pf.schema_arrow.names)
+            needed = _needed_columns(header, opts, time_column, wanted)
+            _require_columns(path, header, needed, opts, "Parquet schema")
+            frame = pf.read(columns=needed).to_pandas()
+    except DataError:
+        raise
+    except Exception as exc:  # noqa: BLE001 - pyarrow raises ArrowInvalid, OSError, ...
+        raise DataError(f"the file cannot be read as Parquet: {exc}", where=str(path)) from None
+    return frame, "row", np.arange(len(frame), dtype=np.int64) + 1
+
+
+def _excel_frame(path: Path, opts: ReadOptions, time_column, wanted):
+    import openpyxl
+
+    try:
+        wb = openpyxl.load_workbook(path, read_only=True, data_only=True)
+    except Exception as exc:  # noqa: BLE001 - zip, xml and openpyxl errors
+        raise DataError(f"the file cannot be read as an Excel workbook: {exc}", where=str(path)) from None
+    try:
+        if opts.sheet is not None:
+            if opts.sheet not in wb.sheetnames:
+                close = difflib.get_close_matches(opts.sheet, wb.sheetnames, n=1)
+                raise DataError(f"no sheet '{opts.sheet}'", where=str(path),
+                                hint=(f"did you mean '{close[0]}'? " if close else "") +
+                                f"its sheets: {', '.join(wb.sheetnames)}")
+            ws = wb[opts.sheet]
+        else:
+            ws = wb.worksheets[0]
+        rows = list(ws.iter_rows(values_only=True))
+    finally:
+        wb.close()
+    where = f"{path} sheet '{ws.title}'"
+    if len(rows) < opts.header_row or all(v is None for v in rows[opts.header_row - 1]):
+        raise DataError("the sheet is empty" if not rows else f"no header in row {opts.header_row}", where=where,
+                        hint="check the sheet and header_row")
+    header = [str(v).strip() if v is not None else "" for v in rows[opts.header_row - 1]]
+    needed = _needed_columns(header, opts, time_column, wanted)
+    _require_columns(Path(where), header, needed, opts, f"header (row {opts.header_row})")
+    first = opts.header_row + opts.skip_after_header
+    body = rows[first:]
+    pos = [header.index(c) for c in needed]
+    data = {c: pd.Series([r[p] if p < len(r) else None for r in body], dtype=object) for c, p in zip(needed, pos)}
+    frame = pd.DataFrame(data)
+    no_value = set(opts.no_value)
+    frame = frame.map(lambda v: None if isinstance(v, str) and v.strip() in no_value else v)
+    return frame, "row", np.arange(len(frame), dtype=np.int64) + first + 1
+
+
+# -- columns into tag samples ------------------------------------------------------------------
+def to_numbers(col: pd.Series, decimal: str, describe) -> np.ndarray:
+    """Float values of a value column; ``NaN`` for blank cells; a DataError naming the line
+    for the first text that is not a number.  ``describe(i)`` locates row ``i``."""
+    if pd.api.types.is_numeric_dtype(col.dtype) and not pd.api.types.is_bool_dtype(col.dtype):
+        return col.to_numpy(dtype=float, na_value=np.nan)
+    text = col.astype("str").str.strip()
+    blank = col.isna().to_numpy() | (text == "").to_numpy()
+    if decimal == ",":
+        text = text.str.replace(".", "", regex=False).str.replace(",", ".", regex=False)
+    nums = pd.to_numeric(text.where(~blank), errors="coerce")
+    bad = nums.isna().to_numpy() & ~blank
+    if bad.any():
+        i = int(np.argmax(bad))
+        raise DataError(f"'{col.iloc[i]}' is not a number", where=describe(i),
+                        hint="fix the cell, or list that text in no_value if it means 'no sample'")
+    return nums.to_numpy(dtype=float, na_value=np.nan)
+
+
+def normalize_quality_column(col: pd.Series) -> np.ndarray:
+    from graybox.data.config import normalize_quality
+
+    codes, uniq = pd.factorize(col, sort=False)
+    norm = np.array([normalize_quality(u) for u in uniq] + [""], dtype=object)
+    return norm[codes]  # code -1 (missing) maps to ""
+
+
+def _drop_empty_rows(frame: pd.DataFrame, numbers: np.ndarray):
+    empty = frame.isna().all(axis=1).to_numpy()
+    if empty.any():
+        frame = frame.loc[~empty].reset_index(drop=True)
+        numbers = numbers[~empty]
+    return frame, numbers
+
+
+def _to_raw(path: Path, frame: pd.DataFrame, word: str, numbers: np.ndarray, opts: ReadOptions,
+            time_column: str | None, wanted: dict[str, str | None]) -> RawTable:
+    frame, numbers = _drop_empty_rows(frame, numbers)
+    if len(frame) == 0:
+        raise DataError("the file has a header but no data rows", where=str(path), hint="export the data again")
+
+    def locate(column):
+        return lambda i: f"{path} {word} {int(numbers[i])} column '{column}'"
+
+    time = frame[time_column].reset_index(drop=True) if time_column else None
+    tags: dict[str, TagRaw] = {}
+    if opts.layout == "wide":
+        present = tuple(c for c in frame.columns)
+        for tag, qcol in wanted.items():
+            if tag not in frame.columns:
+                continue
+            values = to_numbers(frame[tag], opts.decimal, locate(tag))
+            quality = normalize_quality_column(frame[qcol]) if qcol and qcol in frame.columns else None
+            if qcol and qcol not in frame.columns:
+                raise DataError(f"no quality column '{qcol}' for tag '{tag}'", where=str(path),
+                                hint="check the tag's quality_column")
+            tags[tag] = TagRaw(tag, values, quality, np.arange(len(frame)))
+        return RawTable(path, word, numbers, time, tags, present, time_column)
+    tag_col = frame[opts.tag_column].astype("str").str.strip()
+    codes, names = pd.factorize(tag_col, sort=False)
+    names = [str(n) for n in names]
+    values_all = None
+    for k, name in enumerate(names):
+        if name not in wanted:
+            continue
+        rows = np.flatnonzero(codes == k)
+        col = frame[opts.value_column].iloc[rows].reset_index(drop=True)
+        values = to_numbers(col, opts.decimal, lambda i, r=rows: locate(opts.value_column)(int(r[i])))
+        quality = None
+        if opts.quality_column:
+            quality = normalize_quality_column(frame[opts.quality_column].iloc[rows].reset_index(drop=True))
+        tags[name] = TagRaw(name, values, quality, rows)
+    del values_all
+    return RawTable(path, word, numbers, time, tags, tuple(names), time_column)

@@ -1,0 +1,163 @@
+"""What the data layer did to each tag, as data (``to_dict``) and as a readable table
+(``summary``)."""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass, field
+from typing import Any
+
+
+@dataclass(frozen=True)
+class TagReport:
+    symbol: str
+    tag: str
+    role: str
+    files: tuple[str, ...]
+    rows_read: int  # samples with a value, over every file
+    blank_cells: int  # rows of the tag (or table) without a value
+    first_utc: str | None
+    last_utc: str | None
+    median_interval_s: float | None
+    interval_spread_s: float | None  # interquartile range of the sample intervals
+    coverage_pct: float | None  # share of the record's span not inside a gap of this tag
+    valid: int  # samples used (inputs) or compared (outputs)
+    masked: dict[str, int]
+    flagged: dict[str, int]
+    exact_duplicates: int
+    conflicting_duplicates: int
+    conflict_example: str | None
+    held_repeats_dropped: int
+    outside_windows: int
+    conversion: str
+    gap_limit_s: float | None
+    gaps: int
+    longest_gap_s: float | None
+
+    @property
+    def masked_total(self) -> int:
+        return sum(self.masked.values())
+
+
+@dataclass(frozen=True)
+class SegmentReport:
+    index: int
+    start_utc: str
+    end_utc: str
+    duration_s: float
+    observations: int
+
+
+@dataclass(frozen=True)
+class DataReport:
+    experiment: str
+    sources: tuple[dict, ...]
+    tags: tuple[TagReport, ...]
+    start_utc: str | None
+    end_utc: str | None
+    segments: tuple[SegmentReport, ...]
+    select: tuple[tuple[str, str], ...] = ()
+    exclude: tuple[tuple[str, str], ...] = ()
+    holdout: float | str | None = None
+    problems: tuple[str, ...] = ()  # why a fit could not run; empty = it could
+    notes: tuple[str, ...] = ()
+    windows: tuple[Any, ...] = field(default=())  # informative windows (WindowScore), when ranked
+
+    @property
+    def ok(self) -> bool:
+        return not self.problems
+
+    def tag(self, symbol: str) -> TagReport:
+        return next(t for t in self.tags if t.symbol == symbol)
+
+    def with_windows(self, windows) -> "DataReport":
+        from dataclasses import replace
+
+        return replace(self, windows=tuple(windows))
+
+    def to_dict(self) -> dict:
+        d = asdict(self)
+        d["windows"] = [w.to_dict() if hasattr(w, "to_dict") else w for w in self.windows]
+        d["ok"] = self.ok
+        return d
+
+    def summary(self) -> str:
+        lines = [f"experiment '{self.experiment}': {self.start_utc or '?'} .. {self.end_utc or '?'} (UTC)"]
+        for s in self.sources:
+            lines.append(f"  read {s['path']}  sha256 {s['sha256'][:12]}")
+        head = ("symbol", "tag", "role", "rows", "span (UTC)", "interval", "spread", "cover", "valid", "masked",
+                "flagged")
+        rows = []
+        for t in self.tags:
+            span = f"{_short(t.first_utc)}..{_short(t.last_utc)}" if t.first_utc else "-"
+            rows.append((t.symbol, t.tag, t.role, str(t.rows_read), span, _dur(t.median_interval_s),
+                         _dur(t.interval_spread_s), "-" if t.coverage_pct is None else f"{t.coverage_pct:.1f}%",
+                         str(t.valid), str(t.masked_total), str(sum(t.flagged.values()))))
+        widths = [max(len(h), *(len(r[i]) for r in rows)) if rows else len(h) for i, h in enumerate(head)]
+        lines.append("")
+        lines.append("  " + "  ".join(h.ljust(w) for h, w in zip(head, widths)))
+        for r in rows:
+            lines.append("  " + "  ".join(c.ljust(w) for c, w in zip(r, widths)))
+        lines.append("")
+        for t in self.tags:
+            details = [f"conversion {t.conversion}"]
+            for reason, n in t.masked.items():
+                details.append(f"masked {n} ({reason})")
+            for reason, n in t.flagged.items():
+                details.append(f"flagged {n} ({reason}, not masked)")
+            if t.exact_duplicates:
+                details.append(f"{t.exact_duplicates} exact duplicate rows dropped")
+            if t.conflicting_duplicates:
+                details.append(f"{t.conflicting_duplicates} conflicting duplicates (first kept; e.g. "
+                               f"{t.conflict_example})")
+            if t.held_repeats_dropped:
+                details.append(f"{t.held_repeats_dropped} held repeats dropped (exception logging)")
+            if t.outside_windows:
+                details.append(f"{t.outside_windows} samples outside the selected windows")
+            if t.blank_cells:
+                details.append(f"{t.blank_cells} cells without a value")
+            if t.gaps:
+                details.append(f"{t.gaps} gaps over {_dur(t.gap_limit_s)} (longest {_dur(t.longest_gap_s)})")
+            lines.append(f"  {t.symbol} ({t.tag}): " + "; ".join(details))
+        lines.append("")
+        lines.append(f"  segments: {len(self.segments)}")
+        for s in self.segments:
+            lines.append(f"    {s.index}: {_short(s.start_utc)} .. {_short(s.end_utc)}  ({_dur(s.duration_s)}, "
+                         f"{s.observations} observations)")
+        if self.select:
+            lines.append("  selected: " + ", ".join(f"{a}..{b}" for a, b in self.select))
+        if self.exclude:
+            lines.append("  excluded: " + ", ".join(f"{a}..{b}" for a, b in self.exclude))
+        if self.holdout is not None:
+            lines.append(f"  held out for validation: {self.holdout}")
+        for n in self.notes:
+            lines.append(f"  note: {n}")
+        if self.windows:
+            lines.append("")
+            lines.append("  informative windows (log det of the Fisher information at the guesses):")
+            for w in self.windows:
+                lines.append("    " + w.describe())
+        if self.problems:
+            lines.append("")
+            lines.append("  a fit cannot run:")
+            for p in self.problems:
+                lines.append("    - " + p.replace("\n", "\n      "))
+        return "\n".join(lines)
+
+
+def _short(iso: str | None) -> str:
+    if not iso:
+        return "-"
+    return iso.replace("+00:00", "Z").replace(":00Z", "Z")
+
+
+def _dur(seconds: float | None) -> str:
+    if seconds is None:
+        return "-"
+    s = float(seconds)
+    if s >= 86400 * 2:
+        return f"{s / 86400:.3g} d"
+    if s >= 3600 * 2:
+        return f"{s / 3600:.3g} h"
+    if s >= 120:
+        return f"{s / 60:.3g} min"
+    return f"{s:.3g} s"
