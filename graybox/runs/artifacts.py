@@ -60,6 +60,16 @@ BAND_STYLE = {
 }
 
 
+def _broken_at_gaps(t: np.ndarray, y: np.ndarray, factor: float = 10.0) -> tuple[np.ndarray, np.ndarray]:
+    """Insert NaN where the spacing exceeds ``factor`` times the median, so lines do not
+    bridge gaps between segments."""
+    if t.size < 3:
+        return t, y
+    dt = np.diff(t)
+    cut = np.flatnonzero(dt > factor * np.median(dt)) + 1
+    return np.insert(t.astype(float), cut, np.nan), np.insert(y.astype(float), cut, np.nan)
+
+
 def plot_overlay(path: Path, traces: list[OutputTrace], title: str) -> None:
     """Measured dots and fitted line per output, residuals underneath."""
     import matplotlib
@@ -79,7 +89,7 @@ def plot_overlay(path: Path, traces: list[OutputTrace], title: str) -> None:
                 lo, hi = tr.bands[label]
                 ax.fill_between(hours, lo, hi, color=color, alpha=alpha, lw=0, label=text, step=None)
         ax.plot(hours, tr.measured, ".", ms=2.5, color="#4a4a4a", label="measured")
-        ax.plot(hours, tr.fitted, "-", lw=1.2, color="#c0392b", label="model")
+        ax.plot(*_broken_at_gaps(hours, tr.fitted), "-", lw=1.2, color="#c0392b", label="model")
         ax.set_ylabel(f"{tr.output} [{tr.units}]" if tr.units else tr.output)
         ax.set_title(f"{tr.experiment}: {tr.output}", fontsize=10, loc="left")
         ax.legend(loc="best", fontsize=8, frameon=False)

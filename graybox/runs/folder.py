@@ -47,6 +47,9 @@ def building(out: Path, force: bool = False) -> Iterator[Path]:
     out = Path(out).absolute()
     check_target(out, force)
     tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
+    umask = os.umask(0)
+    os.umask(umask)
+    os.chmod(tmp, 0o777 & ~umask)  # mkdtemp makes it private; a run folder is for colleagues
     try:
         yield tmp
     except BaseException:

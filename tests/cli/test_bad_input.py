@@ -55,7 +55,7 @@ CASES = {
     "guess outside bounds": ("guess = 10.0", "guess = 1000.0", "outside its bounds"),
     "unknown key": ("[parameters.eta]\nguess", "[parameters.eta]\ngues = 1\nguess", "did you mean 'guess'"),
     "missing data column": ('tag = "TT303_mains_temp"', 'tag = "TT303_mains_tmp"', "TT303_mains_temp"),
-    "nan at the initial guess": (RATE, RATE.replace("eta*Q", "log(eta - 2)*Q"), "initial guess (UA = 10, eta = 0.8)"),
+    "nan at the initial guess": (RATE, RATE.replace("eta*Q", "log(eta - 2)*Q"), "initial guess (UA = 10, eta = 0.8, T0[main:1] = 54.966"),
 }
 
 
