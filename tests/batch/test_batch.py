@@ -80,6 +80,7 @@ def fleet(tmp_path: Path, n: int, broken: int | None = None, timeouts: dict | No
 
 
 def one_by_one(manifest: Path, out: Path, base_seed: int) -> dict:
+    out.mkdir()
     estimates = {}
     for job in read_manifest(manifest):
         if not job.data or "unit05" in str(job.data[0]):
