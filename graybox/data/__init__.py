@@ -19,3 +19,11 @@ from graybox.data.record import (  # noqa: F401
 from graybox.data.config import SymbolInfo  # noqa: F401
 from graybox.data.report import DataReport, SegmentReport, TagReport  # noqa: F401
 from graybox.data.assemble import check_experiment, data_spec, load_experiment  # noqa: F401
+from graybox.data.split import split_record  # noqa: F401
+from graybox.data.windows import (  # noqa: F401
+    InputMove,
+    WindowScore,
+    rank_windows,
+    windows_to_frame,
+    write_windows,
+)

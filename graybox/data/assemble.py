@@ -11,7 +11,7 @@ Order of work per tag (each step a small function below):
    conflicting duplicates (same time, another value) the first recorded is kept, the others
    are counted and one example is named;
 5. report-by-exception tags: held repeats dropped;
-6. quality flag, valid range (in the tag's own units), units into the model's, spikes, stuck.
+6. quality flag, valid range (in the tag's own units), units into the model's, stuck, spikes.
 
 Outputs keep every sample with a mask; inputs lose their masked samples (the last good
 value holds).  Input gaps longer than the gap limit, excluded windows and the spaces between
@@ -220,11 +220,10 @@ def process_tag(tg: TagSpec, chunks: list[Chunk], spec: DataSpec, conv: Conversi
         judged[REASON_QUALITY] = bq
     values = conv.apply(v)
     pre_bad = judged[REASON_RANGE] | (bq if bq is not None else False)
+    st = stuck(t, v, ~pre_bad, tg.deadband, spec.stuck_after)
     if spec.spikes is not None:
         floor = tg.deadband * abs(conv.scale)
-        judged[REASON_SPIKE] = spikes(t, values, ~pre_bad, spec.spikes.window, spec.spikes.threshold, floor)
-    pre_bad2 = pre_bad | judged.get(REASON_SPIKE, False)
-    st = stuck(t, v, ~pre_bad2, tg.deadband, spec.stuck_after)
+        judged[REASON_SPIKE] = spikes(t, values, ~(pre_bad | st), spec.spikes.window, spec.spikes.threshold, floor)
     flagged: dict[str, int] = {}
     if spec.stuck_action == "mask":
         judged[REASON_STUCK] = st

@@ -65,7 +65,7 @@ tables with the same keys.  Every key, with its default::
     span = [0, 250]                   # percent-of-span tags: units = "%", span in span_units
     span_units = "degF"
     valid = [0, 300]                  # valid range, in the tag's own units (as logged)
-    deadband = 0.5                    # logging deadband, tag units (judges stuck sensors)
+    deadband = 0.5                    # logging deadband, tag units: a run flat to half of it is stuck
     logging = "sampled"               # sampled | exception (report-by-exception; repeats are holds)
     quality_column = "TI_101.Q"       # wide layout: this tag's quality column
     max_gap = "1 h"                   # this input's own gap limit

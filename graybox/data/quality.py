@@ -2,8 +2,9 @@
 array, True where the sample is judged (bad, out of range, a spike, stuck, a held repeat).
 
 Reasons are counted once per sample, in this order: a time that does not exist, a bad
-quality flag, out of the valid range, a spike, stuck.  Spike and stuck judgements only see
-samples that passed the earlier ones.
+quality flag, out of the valid range, stuck, a spike.  The stuck judgement sees only samples
+that passed flag and range; the spike judgement sees only those that are not stuck either
+(a frozen stretch would make the robust spread look zero next to it).
 """
 
 from __future__ import annotations
@@ -16,7 +17,7 @@ REASON_QUALITY = "bad quality flag"
 REASON_RANGE = "outside valid range"
 REASON_SPIKE = "spike"
 REASON_STUCK = "stuck sensor"
-REASON_ORDER = (REASON_NONEXISTENT, REASON_QUALITY, REASON_RANGE, REASON_SPIKE, REASON_STUCK)
+REASON_ORDER = (REASON_NONEXISTENT, REASON_QUALITY, REASON_RANGE, REASON_STUCK, REASON_SPIKE)
 
 # 1.4826 = 1/Phi^-1(3/4): the MAD of a normal distribution times it is its standard deviation
 # (common practice in robust statistics).
@@ -48,42 +49,66 @@ def held_repeats(values: np.ndarray) -> np.ndarray:
     return out
 
 
+def _half_medians(t_ns: np.ndarray, v: np.ndarray, half_s: float) -> tuple[np.ndarray, np.ndarray]:
+    """Median of the samples in ``[t - half, t)`` and in ``(t, t + half]`` of each sample
+    (NaN where that side holds none)."""
+    win = pd.Timedelta(seconds=half_s)
+    left = pd.Series(v, index=pd.DatetimeIndex(t_ns.view("M8[ns]"))).rolling(win, closed="left").median()
+    rt = (-t_ns[::-1]).view("M8[ns]")
+    right = pd.Series(v[::-1], index=pd.DatetimeIndex(rt)).rolling(win, closed="left").median()
+    return left.to_numpy(), right.to_numpy()[::-1]
+
+
 def spikes(t_ns: np.ndarray, values: np.ndarray, usable: np.ndarray, window_s: float, threshold: float,
            floor: float = 0.0) -> np.ndarray:
     """Samples further than ``threshold`` robust standard deviations from the running median
-    of a centred time window; the robust deviation is 1.4826 times the running median of
-    absolute deviations from the running median (never below ``floor``).  Where that
-    deviation is zero (a flat signal) nothing is judged."""
+    of a centred time window that also stand apart from *both* halves of it: from the median
+    of the half window before them and from that of the half window after them (one side
+    only at the ends of the series or of an outage).  A sample next to a step change agrees
+    with one side and is never judged (the centred median there may sit mid-step).
+
+    The robust deviation is 1.4826 times the median absolute deviation from the running
+    (centred) median, taken in the same window but never below the whole series' value (a
+    window of a few dozen samples often underestimates it, which would judge plain noise)
+    nor below ``floor``.  Where it is zero (a flat signal) nothing is judged."""
     out = np.zeros(values.size, bool)
     idx = np.flatnonzero(usable)
     if idx.size < 3:
         return out
-    s = pd.Series(values[idx], index=pd.DatetimeIndex(t_ns[idx].view("M8[ns]")))
+    t, v = t_ns[idx], values[idx]
+    s = pd.Series(v, index=pd.DatetimeIndex(t.view("M8[ns]")))
     win = pd.Timedelta(seconds=window_s)
-    med = s.rolling(win, center=True, min_periods=1).median()
+    med = s.rolling(win, center=True, min_periods=1, closed="both").median()
     dev = (s - med).abs()
-    mad = dev.rolling(win, center=True, min_periods=1).median()
-    scale = np.maximum(MAD_TO_SIGMA * mad.to_numpy(), floor)
-    d = dev.to_numpy()
-    hit = (scale > 0) & (d > threshold * scale)
+    mad = dev.rolling(win, center=True, min_periods=1, closed="both").median().to_numpy()
+    overall = MAD_TO_SIGMA * float(np.median(dev.to_numpy()))
+    scale = np.maximum(np.maximum(MAD_TO_SIGMA * mad, overall), floor)
+    left, right = _half_medians(t, v, window_s / 2.0)
+    limit = threshold * scale
+    far_left = np.where(np.isnan(left), True, np.abs(v - left) > limit)
+    far_right = np.where(np.isnan(right), True, np.abs(v - right) > limit)
+    far = dev.to_numpy() > limit
+    hit = (scale > 0) & far & far_left & far_right
     out[idx[hit]] = True
     return out
 
 
 def stuck(t_ns: np.ndarray, values: np.ndarray, usable: np.ndarray, deadband: float, min_duration_s: float,
           min_samples: int = 3) -> np.ndarray:
-    """Runs of consecutive usable samples that all lie within ``deadband`` of the run's first
-    sample (exactly equal for a zero deadband), at least ``min_samples`` long and lasting at
-    least ``min_duration_s``.
+    """Runs of consecutive usable samples that all lie within half the ``deadband`` of the
+    run's first sample (exactly equal for a zero deadband), at least ``min_samples`` long and
+    lasting at least ``min_duration_s``.
 
-    A live sensor logged periodically moves by more than its deadband from sample to sample
-    (noise); a frozen one repeats itself.  A report-by-exception export stores a sample only
-    when the value moved by more than the deadband, so it never forms such a run, however
-    long the plant sat steady."""
+    A live sensor logged periodically moves from sample to sample (noise); a frozen one
+    repeats itself.  A report-by-exception export stores a sample only when the value moved
+    by the deadband, so consecutive samples differ by about the deadband and never form such
+    a run, however long the plant sat steady (half the deadband leaves room for stored
+    values rounded at the deadband's edge)."""
     out = np.zeros(values.size, bool)
     idx = np.flatnonzero(usable)
     if idx.size < min_samples:
         return out
+    deadband = 0.5 * deadband
     v, t = values[idx], t_ns[idx]
     # candidate stretches: every step within 2*deadband (necessary for a run)
     close = np.abs(np.diff(v)) <= 2.0 * deadband
