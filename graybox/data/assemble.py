@@ -130,7 +130,7 @@ def missing_tag_error(tg: TagSpec, spec: DataSpec, tables: dict[int, RawTable]) 
     files = ", ".join(str(p) for p in spec.files)
     hint = (f"close matches: {', '.join(repr(c) for c in close)}" if close else
             f"the files hold: {', '.join(repr(n) for n in names[:15])}{' ...' if len(names) > 15 else ''}")
-    return DataError(f"tag '{tg.tag}' (model symbol '{tg.symbol}') is in no {what} of {files}", where=tg.where,
+    return DataError(f"tag '{tg.tag}' (model symbol '{tg.symbol}') is in no {what} of {files}", where=tg.where_tag,
                      hint=hint + "; correct the tag name in the config")
 
 
@@ -356,12 +356,12 @@ def assemble(spec: DataSpec) -> Assembly:
     for td in tags:
         if td.t_ns.size == 0:
             problems.append(DataError(f"{td.spec.role} '{td.spec.symbol}' (tag '{td.spec.tag}') has no sample left",
-                                      where=td.spec.where, hint="check the selected and excluded windows"))
+                                      where=td.spec.where_tag, hint="check the selected and excluded windows"))
         elif not td.use.any():
             reasons = ", ".join(f"{n} {r}" for r, n in td.stats["masked"].items())
             problems.append(DataError(
                 f"every sample of {td.spec.role} '{td.spec.symbol}' (tag '{td.spec.tag}') is masked ({reasons})",
-                where=td.spec.where, hint="check good_quality, the valid range and the units of that tag"))
+                where=td.spec.where_tag, hint="check good_quality, the valid range and the units of that tag"))
     segments: list[tuple[int, int]] = []
     notes: list[str] = []
     record = None

@@ -143,7 +143,8 @@ class TagSpec:
     logging: str
     quality_column: str | None
     max_gap: float | None  # seconds; None = the experiment's
-    where: str  # location of this tag's table, for messages
+    where: str  # location of this tag's units (or table), for unit messages
+    where_tag: str = ""  # location of the tag name, for messages about the tag itself
 
 
 @dataclass(frozen=True)
@@ -346,7 +347,8 @@ def _tag(t: Table, symbol: str, info: SymbolInfo, defaults: dict) -> TagSpec:
         standard_temperature=_quantity_text(sub, "standard_temperature", defaults["standard_temperature"]),
     )
     return TagSpec(symbol, tag.strip(), info.role, info.units, info.hold, units, valid, float(deadband), logging,
-                   quality, max_gap, sub.where("units" if "units" in sub else None))
+                   quality, max_gap, sub.where("units" if "units" in sub else None),
+                   sub.where("tag") if isinstance(raw, dict) else t.where(symbol))
 
 
 def parse_data_table(table: dict, name: str, *, symbols: Mapping[str, SymbolInfo], base_dir: Path,

@@ -67,12 +67,12 @@ def read_table(path: Path, opts: ReadOptions, time_column: str | None, wanted: d
     files may feed one experiment).  ``text_time``: keep the time column as text."""
     fmt = file_format(path, opts)
     if fmt == "csv":
-        frame, word, numbers = _csv_frame(path, opts, time_column, wanted, text_time)
+        frame, word, numbers, header = _csv_frame(path, opts, time_column, wanted, text_time)
     elif fmt == "parquet":
-        frame, word, numbers = _parquet_frame(path, opts, time_column, wanted)
+        frame, word, numbers, header = _parquet_frame(path, opts, time_column, wanted)
     else:
-        frame, word, numbers = _excel_frame(path, opts, time_column, wanted)
-    return _to_raw(path, frame, word, numbers, opts, time_column, wanted)
+        frame, word, numbers, header = _excel_frame(path, opts, time_column, wanted)
+    return _to_raw(path, frame, word, numbers, opts, time_column, wanted, header)
 
 
 # -- the three storage formats ---------------------------------------------------------------
@@ -145,7 +145,7 @@ def _csv_frame(path: Path, opts: ReadOptions, time_column, wanted, text_time):
     frame.columns = [str(c).strip() for c in frame.columns]
     first_data_line = opts.header_row + opts.skip_after_header + 1
     numbers = np.arange(len(frame), dtype=np.int64) + first_data_line
-    return frame, "line", numbers
+    return frame, "line", numbers, header
 
 
 def _parquet_frame(path: Path, opts: ReadOptions, time_column, wanted):
@@ -162,7 +162,7 @@ def _parquet_frame(path: Path, opts: ReadOptions, time_column, wanted):
         raise
     except Exception as exc:  # noqa: BLE001 - pyarrow raises ArrowInvalid, OSError, ...
         raise DataError(f"the file cannot be read as Parquet: {exc}", where=str(path)) from None
-    return frame, "row", np.arange(len(frame), dtype=np.int64) + 1
+    return frame, "row", np.arange(len(frame), dtype=np.int64) + 1, header
 
 
 def _excel_frame(path: Path, opts: ReadOptions, time_column, wanted):
@@ -199,7 +199,7 @@ def _excel_frame(path: Path, opts: ReadOptions, time_column, wanted):
     frame = pd.DataFrame(data)
     no_value = set(opts.no_value)
     frame = frame.map(lambda v: None if isinstance(v, str) and v.strip() in no_value else v)
-    return frame, "row", np.arange(len(frame), dtype=np.int64) + first + 1
+    return frame, "row", np.arange(len(frame), dtype=np.int64) + first + 1, header
 
 
 # -- columns into tag samples ------------------------------------------------------------------
@@ -238,7 +238,7 @@ def _drop_empty_rows(frame: pd.DataFrame, numbers: np.ndarray):
 
 
 def _to_raw(path: Path, frame: pd.DataFrame, word: str, numbers: np.ndarray, opts: ReadOptions,
-            time_column: str | None, wanted: dict[str, str | None]) -> RawTable:
+            time_column: str | None, wanted: dict[str, str | None], header: list[str]) -> RawTable:
     frame, numbers = _drop_empty_rows(frame, numbers)
     if len(frame) == 0:
         raise DataError("the file has a header but no data rows", where=str(path), hint="export the data again")
@@ -249,7 +249,7 @@ def _to_raw(path: Path, frame: pd.DataFrame, word: str, numbers: np.ndarray, opt
     time = frame[time_column].reset_index(drop=True) if time_column else None
     tags: dict[str, TagRaw] = {}
     if opts.layout == "wide":
-        present = tuple(c for c in frame.columns)
+        present = tuple(header)
         for tag, qcol in wanted.items():
             if tag not in frame.columns:
                 continue
