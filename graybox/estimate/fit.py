@@ -15,8 +15,11 @@ The optimiser is lmfit's ``least_squares`` (scipy's trust-region reflective meth
 handled natively, so no transformation distorts the Jacobian), with the exact Jacobian from
 the forward sensitivities.  A trial point whose simulation fails returns non-finite
 residuals, which the trust-region method treats as a rejected step; only a failure at the
-initial guess is a user error.  After convergence, Gauss-Newton polishing steps (exact
-Jacobian, SVD solve) are taken while they lower the SSE, for the last digits.
+initial guess is a user error.  After convergence the point is polished to the stationary
+point of the SSE, for the last digits: Gauss-Newton steps (exact Jacobian, SVD solve), then
+Newton steps with the full Hessian where Gauss-Newton contracts slowly, judged by the
+relative offset of the residuals rather than by SSE differences, which are rounding there
+(see ``_polish``).
 
 The covariance is (J^T J)^-1 at the optimum from an SVD (a rank-deficient Jacobian is
 reported, never silently inverted).  AIC and BIC come from the full Gaussian
@@ -190,33 +193,124 @@ def _sse(problem: Problem, x: np.ndarray, sigmas: np.ndarray) -> float:
     return float(r @ r) if np.all(np.isfinite(r)) else np.inf
 
 
-def _polish(problem: Problem, x: np.ndarray, sigmas: np.ndarray, max_steps: int = 8) -> tuple[np.ndarray, int]:
-    """Gauss-Newton steps with the exact Jacobian while they lower the SSE and stay inside
-    the bounds (parameters at a bound are left where they are)."""
+EPS = np.finfo(float).eps
+SLOW_CONTRACTION = 0.1  # Gauss-Newton offsets shrinking slower than this per step: switch to Newton
+
+
+@dataclass
+class _Point:
+    """Residuals, Jacobian and the derived convergence measures at one free vector."""
+
+    x: np.ndarray
+    r: np.ndarray
+    J: np.ndarray
+    sse: float
+    offset: float  # relative offset ||P_J r|| / ||r|| (0 at a stationary point)
+    gn_step: np.ndarray
+
+
+def _evaluate(problem: Problem, x: np.ndarray, sigmas: np.ndarray) -> _Point | None:
+    """The point at ``x``, or None where the model fails there."""
+    r = problem.residuals(x, sigmas)
+    if not np.all(np.isfinite(r)):
+        return None
+    J = problem.jacobian(x, sigmas)
+    if not np.all(np.isfinite(J)):
+        return None
+    scale = np.linalg.norm(J, axis=0)
+    scale[scale == 0] = 1.0
+    U, s, Vt = np.linalg.svd(J / scale, full_matrices=False)
+    keep = s > s.max(initial=0.0) * max(J.shape) * EPS
+    ur = U[:, keep].T @ r
+    norm_r = float(np.linalg.norm(r))
+    offset = float(np.linalg.norm(ur) / norm_r) if norm_r > 0 else 0.0
+    step = -(Vt[keep].T @ (ur / s[keep])) / scale
+    return _Point(x, r, J, float(r @ r), offset, step)
+
+
+def _sse_rounding(problem: Problem, point: _Point, sigmas: np.ndarray) -> float:
+    """The level below which computed SSE differences are rounding: each weighted residual
+    (y - f)/sigma carries an error of a few ulps of (|y| + |f|)/sigma."""
+    observed = np.concatenate([problem.observed(e, o) / sigmas[k]
+                               for e in range(len(problem.experiments))
+                               for k, o in enumerate(problem.spec.output_names)])
+    size = np.abs(observed) + np.abs(observed - point.r)
+    return float(16 * EPS * np.sum(np.abs(point.r) * size))
+
+
+def _newton_step(problem: Problem, point: _Point, sigmas: np.ndarray) -> np.ndarray | None:
+    """Newton step on the SSE with the full Hessian: central differences of the exact
+    gradient J^T r (step eps^(1/3) relative).  None where the Hessian is not positive
+    definite in column-scaled variables, or a difference point fails or leaves the bounds."""
+    x = point.x
     lo, hi = problem.bounds()
-    best = _sse(problem, x, sigmas)
+    scale = np.linalg.norm(point.J, axis=0)
+    scale[scale == 0] = 1.0
+    H = np.empty((x.size, x.size))
+    for j in range(x.size):
+        h = EPS ** (1 / 3) * (abs(x[j]) if x[j] != 0 else 1.0 / scale[j])
+        grads = []
+        for sign in (1.0, -1.0):
+            xs = x.copy()
+            xs[j] += sign * h
+            if not lo[j] < xs[j] < hi[j]:
+                return None
+            r = problem.residuals(xs, sigmas)
+            J = problem.jacobian(xs, sigmas)
+            if not (np.all(np.isfinite(r)) and np.all(np.isfinite(J))):
+                return None
+            grads.append(J.T @ r)
+        H[:, j] = (grads[0] - grads[1]) / (2 * h)
+    Hs = H / np.outer(scale, scale)
+    Hs = 0.5 * (Hs + Hs.T)
+    w, V = np.linalg.eigh(Hs)
+    if not w.min() > w.max() * x.size * EPS:
+        return None
+    gs = (point.J.T @ point.r) / scale
+    return -(V @ ((V.T @ gs) / w)) / scale
+
+
+def _polish(problem: Problem, x: np.ndarray, sigmas: np.ndarray, max_steps: int = 30) -> tuple[np.ndarray, int]:
+    """Refine a converged point to the stationary point of the SSE.
+
+    At the optimum SSE differences drown in rounding long before the estimates have their
+    last digits, so progress is judged by the relative offset ||P_J r|| / ||r|| (the cosine
+    between the residuals and the model's tangent plane; Bates and Watts 1981), which stays
+    accurate there.  Gauss-Newton steps (exact Jacobian, SVD in column-scaled variables) are
+    taken while they lower the offset and do not raise the SSE beyond its rounding level.
+    Gauss-Newton converges only linearly where residuals are large against the curvature;
+    once it contracts slowly, Newton steps with the full Hessian (central differences of the
+    exact gradient) take over.  Parameters at a bound are left where they are."""
+    lo, hi = problem.bounds()
+    point = _evaluate(problem, x, sigmas)
+    if point is None or not np.all((x > lo) & (x < hi)):
+        return x, 0
     steps = 0
+    newton = False
     for _ in range(max_steps):
-        J = problem.jacobian(x, sigmas)
-        r = problem.residuals(x, sigmas)
-        inside = (x > lo) & (x < hi)
-        if not inside.all() or not np.all(np.isfinite(J)):
+        if point.offset == 0.0:
             break
-        scale = np.linalg.norm(J, axis=0)
-        scale[scale == 0] = 1.0
-        step, *_ = np.linalg.lstsq(J / scale, -r, rcond=None)
-        x_new = x + step / scale
-        if np.any(x_new <= lo) or np.any(x_new >= hi):
+        noise = _sse_rounding(problem, point, sigmas)
+        trials = [_newton_step(problem, point, sigmas), point.gn_step] if newton else [point.gn_step]
+        accepted = None
+        for k, step in enumerate(trials):
+            if step is None:
+                continue
+            x_new = point.x + step
+            if np.any(x_new <= lo) or np.any(x_new >= hi) or np.array_equal(x_new, point.x):
+                continue
+            new = _evaluate(problem, x_new, sigmas)
+            if new is not None and new.offset < point.offset and new.sse <= point.sse + noise:
+                accepted = (new, newton and k == 0)
+                break
+        if accepted is None:
             break
-        s_new = _sse(problem, x_new, sigmas)
-        if not s_new < best:
-            break
-        rel = abs(best - s_new) / max(best, 1e-300)
-        x, best = x_new, s_new
+        new, was_newton = accepted
+        if not was_newton and new.offset > SLOW_CONTRACTION * point.offset:
+            newton = True
+        point = new
         steps += 1
-        if rel < 1e-15:
-            break
-    return x, steps
+    return point.x, steps
 
 
 def _latin_starts(problem: Problem, n: int, rng: np.random.Generator) -> np.ndarray:
