@@ -15,9 +15,9 @@ ridge (``1e-9`` by default) keeps the determinant of a window that leaves a para
 undetermined finite: such a window scores about ``log(1e-9) = -20.7`` per missing direction.
 
 Windows overlap by design (``step`` < ``window``); the best ones are chosen greedily, each
-overlapping none chosen before.  Each is described by its input moves: the largest step of
-each input inside the window, named when it is at least 5 % of that input's range over the
-record.
+overlapping none chosen before.  Each is described by its input moves: the largest rise and
+the largest fall of each input inside the window, named when at least 5 % of that input's
+range over the record, biggest first.
 """
 
 from __future__ import annotations
@@ -121,11 +121,11 @@ def _moves(record: Record, lo: float, hi: float) -> tuple[InputMove, ...]:
         v = np.concatenate([series.at([lo]), series.values[inside]])
         tt = np.concatenate([[lo], series.t[inside]])
         d = np.diff(v)
-        k = int(np.argmax(np.abs(d)))
-        if abs(d[k]) < MOVE_SHARE * full:
-            continue
-        at = record.start_utc + timedelta(seconds=float(tt[k + 1]))
-        out.append((abs(d[k]) / full, InputMove(name, float(v[k]), float(v[k + 1]), at, series.units)))
+        for k in {int(np.argmax(d)), int(np.argmin(d))}:  # the largest rise and the largest fall
+            if abs(d[k]) < MOVE_SHARE * full:
+                continue
+            at = record.start_utc + timedelta(seconds=float(tt[k + 1]))
+            out.append((abs(d[k]) / full, InputMove(name, float(v[k]), float(v[k + 1]), at, series.units)))
     out.sort(key=lambda m: -m[0])
     return tuple(m for _, m in out)
 
