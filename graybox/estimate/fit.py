@@ -195,6 +195,7 @@ def _sse(problem: Problem, x: np.ndarray, sigmas: np.ndarray) -> float:
 
 EPS = np.finfo(float).eps
 SLOW_CONTRACTION = 0.1  # Gauss-Newton offsets shrinking slower than this per step: switch to Newton
+NEGLIGIBLE_STEP = 1e-9  # polishing stops once no value would move by this fraction of its std. error
 
 
 @dataclass
@@ -207,6 +208,15 @@ class _Point:
     sse: float
     offset: float  # relative offset ||P_J r|| / ||r|| (0 at a stationary point)
     gn_step: np.ndarray
+    se: np.ndarray  # s * sqrt(diag((J^T J)^-1)), s^2 = SSE/(n - p): each value's uncertainty
+
+    def step_is_negligible(self) -> bool:
+        """The Gauss-Newton step moves no value by more than NEGLIGIBLE_STEP of its standard
+        error: further digits are below what the data (or the integration tolerance of a
+        dynamic model) can mean."""
+        with np.errstate(divide="ignore", invalid="ignore"):
+            ratio = np.abs(self.gn_step) / self.se
+        return bool(np.all(np.isfinite(ratio)) and ratio.max(initial=0.0) < NEGLIGIBLE_STEP)
 
 
 def _evaluate(problem: Problem, x: np.ndarray, sigmas: np.ndarray) -> _Point | None:
@@ -225,7 +235,11 @@ def _evaluate(problem: Problem, x: np.ndarray, sigmas: np.ndarray) -> _Point | N
     norm_r = float(np.linalg.norm(r))
     offset = float(np.linalg.norm(ur) / norm_r) if norm_r > 0 else 0.0
     step = -(Vt[keep].T @ (ur / s[keep])) / scale
-    return _Point(x, r, J, float(r @ r), offset, step)
+    dof = max(r.size - x.size, 1)
+    # the residual scale enters: the weights may still be provisional (sigma = 1 before the
+    # first reweighting), and the step is judged against the uncertainty the data imply
+    se = np.sqrt(np.sum((Vt[keep] / s[keep, None]) ** 2, axis=0)) / scale * np.sqrt(float(r @ r) / dof)
+    return _Point(x, r, J, float(r @ r), offset, step, se)
 
 
 def _sse_rounding(problem: Problem, point: _Point, sigmas: np.ndarray) -> float:
@@ -280,7 +294,9 @@ def _polish(problem: Problem, x: np.ndarray, sigmas: np.ndarray, max_steps: int 
     taken while they lower the offset and do not raise the SSE beyond its rounding level.
     Gauss-Newton converges only linearly where residuals are large against the curvature;
     once it contracts slowly, Newton steps with the full Hessian (central differences of the
-    exact gradient) take over.  Parameters at a bound are left where they are."""
+    exact gradient) take over.  Polishing stops once the next step would move no value by
+    more than 1e-9 of its standard error.  Parameters at a bound are left where
+    they are."""
     lo, hi = problem.bounds()
     point = _evaluate(problem, x, sigmas)
     if point is None or not np.all((x > lo) & (x < hi)):
@@ -288,7 +304,7 @@ def _polish(problem: Problem, x: np.ndarray, sigmas: np.ndarray, max_steps: int 
     steps = 0
     newton = False
     for _ in range(max_steps):
-        if point.offset == 0.0:
+        if point.offset == 0.0 or point.step_is_negligible():
             break
         noise = _sse_rounding(problem, point, sigmas)
         trials = [_newton_step(problem, point, sigmas), point.gn_step] if newton else [point.gn_step]
