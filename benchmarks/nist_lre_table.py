@@ -94,6 +94,20 @@ def markdown(rows: list[tuple[nist.NistProblem, nist.Score]], detail: bool = Fal
     return "\n".join(lines)
 
 
+def code_version() -> str:
+    """The git commit of the code measured (and whether the tree had local changes), if known."""
+    import subprocess
+
+    try:
+        commit = subprocess.run(["git", "rev-parse", "--short", "HEAD"], cwd=ROOT, capture_output=True, text=True,
+                                check=True).stdout.strip()
+        dirty = subprocess.run(["git", "status", "--porcelain", "--", "graybox"], cwd=ROOT, capture_output=True,
+                               text=True, check=True).stdout.strip()
+    except (OSError, subprocess.CalledProcessError):
+        return "unknown commit"
+    return f"commit {commit}" + (" with local changes to graybox/" if dirty else "")
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--out", type=Path, help="also write the table to this Markdown file")
@@ -106,7 +120,7 @@ def main(argv: list[str] | None = None) -> int:
     text = markdown(rows, args.detail)
     footer = (f"\nSource: NIST ITL Statistical Reference Datasets, nonlinear regression, certified values; "
               f"LRE as in McCullough (1999). All {len(rows)} fits in {wall:.1f} s "
-              f"(Python {platform.python_version()}, {platform.machine()}).")
+              f"(graybox {code_version()}; Python {platform.python_version()}, {platform.machine()}).")
     text += "\n" + footer
     print(text)
     if args.out:
