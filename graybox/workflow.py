@@ -40,6 +40,7 @@ class Prepared:
     problem: Problem
     reports: dict  # experiment -> DataReport
     engine: Engine
+    validation: list  # held-out records (the data table's `holdout`), possibly empty
 
 
 def data_symbols(study: Study) -> dict:
@@ -53,24 +54,72 @@ def data_symbols(study: Study) -> dict:
     return out
 
 
-def load_records(study: Study) -> tuple[list, dict]:
-    from graybox.data import load_experiment
+def load_records(study: Study) -> tuple[list, dict, list]:
+    """Fit records, data reports and held-out validation records, per experiment."""
+    from graybox.data import data_spec, load_experiment
+    from graybox.data.split import split_record
 
     symbols = data_symbols(study)
-    records, reports = [], {}
+    records, reports, validation = [], {}, []
     for name, table in study.experiments.items():
         where = table.where()
         rec, rep = load_experiment(table.data, name, symbols=symbols, base_dir=study.base_dir, where=where)
+        holdout = data_spec(table.data, name, symbols=symbols, base_dir=study.base_dir, where=where).holdout
+        if holdout is not None:
+            rec, held = split_record(rec, holdout)
+            validation.append(held)
         records.append(rec)
         reports[name] = rep
-    return records, reports
+    return records, reports, validation
 
 
 def prepare(study: Study) -> Prepared:
-    records, reports = load_records(study)
+    records, reports, validation = load_records(study)
     engine = Engine(study.spec, study.engine, study.tol)
     experiments = [Experiment(r.name, plan(study.spec, r)) for r in records]
-    return Prepared(study, Problem(study.spec, experiments, engine), reports, engine)
+    return Prepared(study, Problem(study.spec, experiments, engine), reports, engine, validation)
+
+
+def validation_spec(spec):
+    """The model for held-out data: initial states that were estimated on the fit part
+    start from their first measurement (if measured directly) or the steady state."""
+    from graybox.model.spec import INITIAL_ESTIMATE, INITIAL_MEASURED, INITIAL_STEADY
+
+    measured = {o.state for o in spec.outputs if o.state}
+    states = tuple(dataclasses.replace(s, initial=INITIAL_MEASURED if s.name in measured else INITIAL_STEADY)
+                   if s.initial == INITIAL_ESTIMATE else s for s in spec.states)
+    return dataclasses.replace(spec, states=states)
+
+
+def validate(prepared: Prepared, res: FitResult) -> tuple[dict, list[OutputTrace]]:
+    """Predict the held-out records with the fitted parameters (no refit): per output the
+    number of observations, bias, RMSE and RMSE relative to the fitted noise level."""
+    if not prepared.validation:
+        return {}, []
+    spec = validation_spec(prepared.study.spec)
+    engine = Engine(spec, prepared.study.engine, prepared.study.tol)
+    problem = Problem(spec, [Experiment(r.name, plan(spec, r)) for r in prepared.validation], engine)
+    x = np.array([res.parameters[f.name].estimate for f in problem.free])
+    traces = traces_for(problem, x)
+    out: dict = {}
+    for tr in traces:
+        r = tr.residual
+        sigma = res.sigmas[tr.output]
+        out.setdefault(tr.experiment, {})[tr.output] = {
+            "n_obs": int(r.size), "bias": float(np.mean(r)), "rmse": float(np.sqrt(np.mean(r**2))),
+            "rmse_over_sigma": float(np.sqrt(np.mean(r**2)) / sigma),
+            "start_utc": tr.utc()[0].strftime("%Y-%m-%dT%H:%M:%SZ"), "end_utc": tr.utc()[-1].strftime("%Y-%m-%dT%H:%M:%SZ"),
+        }
+    return out, traces
+
+
+def validation_text(summary: dict) -> str:
+    lines = ["held-out validation (fitted parameters, no refit):"]
+    for exp, outs in summary.items():
+        for o, v in outs.items():
+            lines.append(f"  {exp}/{o}: {v['n_obs']} observations {v['start_utc']} .. {v['end_utc']}, "
+                         f"bias {v['bias']:.4g}, RMSE {v['rmse']:.4g} ({v['rmse_over_sigma']:.2f} x the fitted sigma)")
+    return "\n".join(lines)
 
 
 def traces_for(problem: Problem, x: np.ndarray) -> list[OutputTrace]:
@@ -165,6 +214,10 @@ def fit_study(config: str | Path, out: str | Path, *, force: bool = False, echo:
     echo(res.summary())
     wall = time.perf_counter() - t0
     doc = results_document(study, prepared, res, started, wall)
+    val_summary, val_traces = validate(prepared, res)
+    if val_summary:
+        doc["validation"] = val_summary
+        echo(validation_text(val_summary))
     doc["run"]["overrides"] = overrides or {}
     doc["run"].update(run_info or {})
     with building(out, force) as tmp:
@@ -172,6 +225,9 @@ def fit_study(config: str | Path, out: str | Path, *, force: bool = False, echo:
         traces = traces_for(prepared.problem, res.x)
         write_fitted_csv(tmp / "fitted.csv", traces)
         plot_overlay(tmp / "fit.png", traces, f"{study.name}: least-squares fit")
+        if val_traces:
+            write_fitted_csv(tmp / "validation.csv", val_traces)
+            plot_overlay(tmp / "validation.png", val_traces, f"{study.name}: held-out data, fitted parameters")
         doc["run"]["wall_s"] = time.perf_counter() - t0
         write_json(tmp / RESULTS, doc)
     echo(f"run folder: {out}")
