@@ -281,7 +281,9 @@ def _integrate_segment(b: Batch, funcs, seg, x, S, ok, method, tol: Tolerances, 
         steps_here = 0
         while s < span:
             h = min(h, span - s)
-            x_new, S_new, err = step_fn(b, x, S, iv, h)
+            # the step starts at offset s into the interval: linear inputs from u(t0 + s)
+            here = Interval(iv.at(s), iv.slope, True) if linear else iv
+            x_new, S_new, err = step_fn(b, x, S, here, h)
             en = error_norm(err, x, x_new, tol.rtol, tol.atol)
             finite = np.all(np.isfinite(x_new), axis=0) & np.isfinite(en)
             newly_bad = ok & ~finite
