@@ -210,6 +210,7 @@ def fit_study(config: str | Path, out: str | Path, *, force: bool = False, echo:
     prepared = prepare(study)
     for name, rep in prepared.reports.items():
         echo(rep.summary())
+    windows = informative_windows(study, prepared, echo)
     res = fit(prepared.problem, study.fit)
     echo(res.summary())
     wall = time.perf_counter() - t0
@@ -225,6 +226,10 @@ def fit_study(config: str | Path, out: str | Path, *, force: bool = False, echo:
         traces = traces_for(prepared.problem, res.x)
         write_fitted_csv(tmp / "fitted.csv", traces)
         plot_overlay(tmp / "fit.png", traces, f"{study.name}: least-squares fit")
+        if windows:
+            from graybox.data.windows import write_windows
+
+            write_windows(windows, tmp)
         if val_traces:
             write_fitted_csv(tmp / "validation.csv", val_traces)
             plot_overlay(tmp / "validation.png", val_traces, f"{study.name}: held-out data, fitted parameters")
@@ -250,6 +255,32 @@ def guess_sensitivities(study: Study, engine: Engine) -> Callable:
         return out
 
     return sensitivity_fn
+
+
+DEFAULT_WINDOW_S, DEFAULT_TOP = 86400.0, 5
+
+
+def informative_windows(study: Study, prepared: Prepared, echo: Echo) -> list:
+    """The most informative windows of each fit record (log det of the Fisher information
+    at the guesses, from the inputs alone), for the run folder."""
+    from graybox.data import data_spec
+    from graybox.data.windows import rank_windows
+
+    fn = guess_sensitivities(study, prepared.engine)
+    symbols = data_symbols(study)
+    scores = []
+    for (name, table), ex in zip(study.experiments.items(), prepared.problem.experiments):
+        search = data_spec(table.data, name, symbols=symbols, base_dir=study.base_dir, where=table.where()).search
+        lo, hi = ex.record.time_span()
+        window = search.window if search else min(DEFAULT_WINDOW_S, (hi - lo) / 2)
+        try:
+            ranked = rank_windows(ex.record, fn, window=window, step=search.step if search else window / 4,
+                                  top=search.top if search else DEFAULT_TOP, noise=dict(search.noise) if search else None)
+        except GrayboxError as exc:  # a record too short to rank is not a failed fit
+            echo(f"note: informative windows of '{name}' not ranked: {exc.message}")
+            continue
+        scores += ranked
+    return scores
 
 
 def check_study(config: str | Path, *, echo: Echo = print) -> int:

@@ -32,7 +32,7 @@ def test_demo_succeeds_and_leaves_inputs_untouched(demo_run):
     code, out, before, after = demo_run
     assert code == 0
     assert before == after
-    assert sorted(p.name for p in out.iterdir()) == ["fit.png", "fitted.csv", "results.json", "study.toml"]
+    assert sorted(p.name for p in out.iterdir()) == ["fit.png", "fitted.csv", "results.json", "study.toml", "windows.csv"]
     assert not [p for p in out.parent.iterdir() if p.name.startswith(".")]
 
 
