@@ -204,15 +204,23 @@ class Check:
             out.append(f"tau changed by {100 * self.tau_change:.1f}% since the last check (bound "
                        f"{100 * st.tau_rtol:g}%)")
         if not self.rhat_ok:
-            out.append(f"R-hat {float(np.nanmax(self.rhat)):.4f} >= {st.rhat_max:g}")
+            value = _extreme(self.rhat, max)
+            out.append(f"R-hat {value:.4f} >= {st.rhat_max:g}" if value is not None else "R-hat not computed")
         if not self.ess_ok:
-            out.append(f"ESS {float(np.nanmin(np.minimum(self.ess, self.ess_tail))):.0f} < {st.min_ess:g}")
+            value = _extreme(np.minimum(self.ess, self.ess_tail), min)
+            out.append(f"ESS {value:.0f} < {st.min_ess:g}" if value is not None else "ESS not computed")
         return out
 
     def to_dict(self) -> dict:
         return {"steps": self.steps, "tau_max": float(np.max(self.tau)), "tau_change": _num(self.tau_change),
-                "rhat_max": _num(np.nanmax(self.rhat)), "ess_min": _num(np.nanmin(np.minimum(self.ess, self.ess_tail))),
+                "rhat_max": _extreme(self.rhat, max), "ess_min": _extreme(np.minimum(self.ess, self.ess_tail), min),
                 "converged": self.converged}
+
+
+def _extreme(values: np.ndarray, pick) -> float | None:
+    """max or min over the finite entries (None when there is none)."""
+    finite = [float(v) for v in np.ravel(values) if np.isfinite(v)]
+    return pick(finite) if finite else None
 
 
 def _num(v) -> float | None:
@@ -227,18 +235,28 @@ def burn_and_thin(tau: np.ndarray, steps: int) -> tuple[int, int]:
     return burn, thin
 
 
-def check_convergence(chain: np.ndarray, tau_prev: np.ndarray | None, st: SamplerSettings) -> Check:
-    """The convergence criteria on ``chain`` (n_steps, n_walkers, n_dim), natural units."""
+def check_convergence(chain: np.ndarray, tau_prev: np.ndarray | None, st: SamplerSettings,
+                      always_diagnose: bool = False) -> Check:
+    """The convergence criteria on ``chain`` (n_steps, n_walkers, n_dim), natural units.
+
+    R-hat and ESS (the costlier part) are computed only once the autocorrelation criteria
+    hold, or when ``always_diagnose``; otherwise they are NaN and count as not met."""
     steps = chain.shape[0]
     tau = autocorr_time(chain)
     change = math.inf if tau_prev is None else float(np.max(np.abs(tau_prev - tau) / tau))
     burn, _ = burn_and_thin(tau, steps)
-    diag = chain_diagnostics(chain[burn:])
+    long_enough = bool(steps > st.tau_factor * float(np.max(tau)))
+    stable = bool(change < st.tau_rtol)
+    n_dim = chain.shape[2]
+    if (long_enough and stable) or always_diagnose:
+        diag = chain_diagnostics(chain[burn:])
+    else:
+        diag = {k: np.full(n_dim, np.nan) for k in ("rhat", "ess", "ess_tail", "ess_mean")}
     with np.errstate(invalid="ignore"):
         rhat_ok = bool(np.all(diag["rhat"] < st.rhat_max))
         ess_ok = bool(np.all(np.minimum(diag["ess"], diag["ess_tail"]) >= st.min_ess))
     return Check(steps, tau, change, burn, diag["rhat"], diag["ess"], diag["ess_tail"], diag["ess_mean"],
-                 bool(steps > st.tau_factor * float(np.max(tau))), bool(change < st.tau_rtol), rhat_ok, ess_ok)
+                 long_enough, stable, rhat_ok, ess_ok)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -493,7 +511,7 @@ def run_posterior(problem: Problem, fit_result: FitResult, noise: dict, settings
     state = emcee.State(Z0, log_prob=lp0)
     bar = _progress_bar(st)
     history: list[dict] = []
-    tau_prev = None
+    tau_prev = tau_before = None
     check = None
     try:
         while sampler.iteration < st.max_steps:
@@ -503,6 +521,7 @@ def run_posterior(problem: Problem, fit_result: FitResult, noise: dict, settings
                     bar.update(1)
             raw = sampler.get_chain()
             chain = post.natural(raw.reshape(-1, n_dim)).reshape(raw.shape)
+            tau_before = tau_prev
             check = check_convergence(chain, tau_prev, st)
             tau_prev = check.tau
             history.append(check.to_dict())
@@ -516,6 +535,8 @@ def run_posterior(problem: Problem, fit_result: FitResult, noise: dict, settings
             bar.close()
     raw = sampler.get_chain()  # (steps, walkers, dim), sampled space
     chain = post.natural(raw.reshape(-1, n_dim)).reshape(raw.shape).transpose(1, 0, 2)
+    if not check.converged:  # the summaries still need R-hat and ESS
+        check = check_convergence(chain.transpose(1, 0, 2), tau_before, st, always_diagnose=True)
     log_prob = sampler.get_log_prob().T
     converged = check.converged
     if converged:
