@@ -32,7 +32,7 @@ import numpy as np
 from graybox.data.config import ROLE_INPUT, DataSpec, SymbolInfo, TagSpec, parse_data_table
 from graybox.data.quality import (REASON_NONEXISTENT, REASON_QUALITY, REASON_RANGE, REASON_SPIKE, REASON_STUCK,
                                   bad_quality, count_first_reasons, held_repeats, out_of_range, spikes, stuck)
-from graybox.data.readers import RawTable, file_sha256, read_table
+from graybox.data.readers import QualityVocab, RawTable, file_sha256, read_table
 from graybox.data.record import InputSeries, OutputSeries, Record, Segment
 from graybox.data.report import DataReport, SegmentReport, TagReport
 from graybox.data.timestamps import NAT, Place, parse_stamps
@@ -80,8 +80,14 @@ def ns_to_datetime(ns: int) -> datetime:
 
 
 # -- reading -------------------------------------------------------------------------------
-def read_files(spec: DataSpec) -> tuple[dict[str, list[Chunk]], tuple[dict, ...], dict[int, RawTable]]:
-    """Every file's rows of every wanted tag, stamped; and the sources read."""
+def read_files(spec: DataSpec, vocab: QualityVocab | None = None
+               ) -> tuple[dict[str, list[Chunk]], tuple[dict, ...], dict[int, RawTable]]:
+    """Every file's rows of every wanted tag, stamped; and the sources read (hashed in a
+    thread while the file is parsed: hashlib lets go of the interpreter lock)."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    vocab = vocab if vocab is not None else QualityVocab()
+    pool = ThreadPoolExecutor(max_workers=1)
     wanted: dict[str, str | None] = {}
     for tg in spec.tags:
         wanted.setdefault(tg.tag, tg.quality_column)
@@ -91,12 +97,20 @@ def read_files(spec: DataSpec) -> tuple[dict[str, list[Chunk]], tuple[dict, ...]
     tables: dict[int, RawTable] = {}
     static_offset = 0
     for k, path in enumerate(spec.files):
-        sources.append({"path": str(path), "sha256": file_sha256(path)})
-        table = read_table(path, spec.read, spec.time.column, wanted, text_time)
+        digest = pool.submit(file_sha256, path)
+        table = read_table(path, spec.read, spec.time.column, wanted, text_time, vocab)
+        sources.append({"path": str(path), "sha256": digest.result()})
         tables[k] = table
         if not table.tags:
             continue
-        used = np.unique(np.concatenate([tr.rows for tr in table.tags.values()]))
+        if len(table.tags) == 1 or spec.read.layout == "wide":
+            used = next(iter(table.tags.values())).rows if spec.read.layout == "long" else \
+                np.arange(len(table.numbers))
+        else:
+            flag = np.zeros(len(table.numbers), bool)
+            for tr in table.tags.values():
+                flag[tr.rows] = True
+            used = np.flatnonzero(flag)
         if table.time is None:
             n = len(table.numbers)
             t_all = (static_offset + np.arange(n, dtype=np.int64)) * 10**9
@@ -110,7 +124,8 @@ def read_files(spec: DataSpec) -> tuple[dict[str, list[Chunk]], tuple[dict, ...]
                     groups[tr.rows] = gi
                 groups = groups[used]
             place = Place(str(path), table.word, table.numbers[used], spec.time.column)
-            stamps = parse_stamps(table.time.iloc[used], spec.time, place, groups)
+            raw_time = table.time if used.size == len(table.numbers) else table.time.iloc[used]
+            stamps = parse_stamps(raw_time, spec.time, place, groups)
             t_all = np.full(len(table.numbers), NAT, np.int64)
             gap_all = np.zeros(len(table.numbers), bool)
             t_all[used] = stamps.utc_ns
@@ -118,6 +133,7 @@ def read_files(spec: DataSpec) -> tuple[dict[str, list[Chunk]], tuple[dict, ...]
         for name, tr in table.tags.items():
             chunks.setdefault(name, []).append(Chunk(k, table.word, table.numbers[tr.rows], t_all[tr.rows],
                                                      gap_all[tr.rows], tr.values, tr.quality))
+    pool.shutdown()
     return chunks, tuple(sources), tables
 
 
@@ -150,7 +166,7 @@ def _concat(chunks: list[Chunk]):
     gap = cat([c.nonexistent for c in chunks])
     v = cat([c.values for c in chunks])
     if any(c.quality is not None for c in chunks):
-        q = cat([c.quality if c.quality is not None else np.full(c.values.size, "", object) for c in chunks])
+        q = cat([c.quality if c.quality is not None else np.full(c.values.size, -1, np.int32) for c in chunks])
     else:
         q = None
     return file_idx, numbers, t, gap, v, q
@@ -159,6 +175,8 @@ def _concat(chunks: list[Chunk]):
 def _dedupe(t, v, q):
     """Indices to keep after a stable sort; counts of exact and conflicting duplicates, and
     the (earlier, later) positions of the first conflict."""
+    if t.size < 2 or bool(np.all(t[1:] > t[:-1])):  # already strictly increasing: nothing to do
+        return np.arange(t.size), 0, 0, None
     order = np.argsort(t, kind="stable")
     ts, vs = t[order], v[order]
     same_t = np.zeros(ts.size, bool)
@@ -180,7 +198,8 @@ def _dedupe(t, v, q):
     return order[~same_t], int(exact.sum()), int(conflict.sum()), example
 
 
-def process_tag(tg: TagSpec, chunks: list[Chunk], spec: DataSpec, conv: Conversion) -> TagData:
+def process_tag(tg: TagSpec, chunks: list[Chunk], spec: DataSpec, conv: Conversion,
+                quality_texts: list[str] = ()) -> TagData:
     file_idx, numbers, t, gap, v, q = _concat(chunks)
     has_value = np.isfinite(v)
     blank = int((~has_value).sum())
@@ -215,7 +234,7 @@ def process_tag(tg: TagSpec, chunks: list[Chunk], spec: DataSpec, conv: Conversi
         t, v = t[~rep], v[~rep]
         q = q[~rep] if q is not None else None
     judged = {REASON_RANGE: out_of_range(v, tg.valid)}
-    bq = bad_quality(q, spec.good_quality)
+    bq = bad_quality(q, list(quality_texts), spec.good_quality)
     if bq is not None:
         judged[REASON_QUALITY] = bq
     values = conv.apply(v)
@@ -335,7 +354,8 @@ def _check_select(spec: DataSpec, tags: list[TagData], raw_spans: list[tuple[int
 
 
 def assemble(spec: DataSpec) -> Assembly:
-    chunks, sources, tables = read_files(spec)
+    vocab = QualityVocab()
+    chunks, sources, tables = read_files(spec, vocab)
     convs = {tg.symbol: tag_conversion(tg.units, tg.model_units, tag=tg.tag, where=tg.where) for tg in spec.tags}
     tags: list[TagData] = []
     raw_spans = []
@@ -346,7 +366,7 @@ def assemble(spec: DataSpec) -> Assembly:
             ok = c.t_ns[~c.nonexistent & np.isfinite(c.values)]
             if ok.size:
                 raw_spans.append((int(ok.min()), int(ok.max())))
-        tags.append(process_tag(tg, chunks[tg.tag], spec, convs[tg.symbol]))
+        tags.append(process_tag(tg, chunks[tg.tag], spec, convs[tg.symbol], vocab.texts))
     if spec.select:
         _check_select(spec, tags, raw_spans)
     problems: list[DataError] = []

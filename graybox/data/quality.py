@@ -24,12 +24,12 @@ REASON_ORDER = (REASON_NONEXISTENT, REASON_QUALITY, REASON_RANGE, REASON_STUCK, 
 MAD_TO_SIGMA = 1.482602218505602
 
 
-def bad_quality(quality: np.ndarray | None, good: frozenset[str]) -> np.ndarray | None:
-    """True where a quality flag is present and not one of the good ones (a blank flag is bad)."""
-    if quality is None:
+def bad_quality(codes: np.ndarray | None, texts: list[str], good: frozenset[str]) -> np.ndarray | None:
+    """True where a quality flag is present and not one of the good ones (a blank flag is
+    bad); ``codes`` index the normalized flag ``texts``."""
+    if codes is None:
         return None
-    codes, uniq = pd.factorize(quality, sort=False)
-    is_good = np.array([u in good for u in uniq] + [False], bool)
+    is_good = np.array([t in good for t in texts] + [False], bool)
     return ~is_good[codes]
 
 

@@ -26,7 +26,7 @@ class TagRaw:
 
     tag: str
     values: np.ndarray  # float, NaN = no value in that cell
-    quality: np.ndarray | None  # normalized quality text per row, or None
+    quality: np.ndarray | None  # quality code per row (into the experiment's QualityVocab), or None
     rows: np.ndarray  # positions into the table's time column
 
 
@@ -61,7 +61,7 @@ def file_format(path: Path, opts: ReadOptions) -> str:
 
 
 def read_table(path: Path, opts: ReadOptions, time_column: str | None, wanted: dict[str, str | None],
-               text_time: bool) -> RawTable:
+               text_time: bool, vocab: QualityVocab | None = None) -> RawTable:
     """Read one file.  ``wanted`` maps each tag the experiment needs to its quality column
     (wide layout) or None; tags absent from this file are simply not in the result (several
     files may feed one experiment).  ``text_time``: keep the time column as text."""
@@ -72,7 +72,7 @@ def read_table(path: Path, opts: ReadOptions, time_column: str | None, wanted: d
         frame, word, numbers, header = _parquet_frame(path, opts, time_column, wanted)
     else:
         frame, word, numbers, header = _excel_frame(path, opts, time_column, wanted)
-    return _to_raw(path, frame, word, numbers, opts, time_column, wanted, header)
+    return _to_raw(path, frame, word, numbers, opts, time_column, wanted, header, vocab or QualityVocab())
 
 
 # -- the three storage formats ---------------------------------------------------------------
@@ -106,7 +106,8 @@ def _csv_frame(path: Path, opts: ReadOptions, time_column, wanted, text_time):
                   header=0, keep_default_na=False, na_values=list(opts.no_value), skip_blank_lines=False)
     try:
         with open(path, "rb") as fh:  # read-only
-            header = [str(c).strip() for c in pd.read_csv(fh, nrows=0, **common).columns]
+            raw_cols = pd.read_csv(fh, nrows=0, **common).columns
+            header = [str(c).strip() for c in raw_cols]
     except pd.errors.EmptyDataError:
         raise DataError("the file is empty" if opts.header_row == 1 else
                         f"the file ends before its header line {opts.header_row}", where=str(path),
@@ -118,24 +119,13 @@ def _csv_frame(path: Path, opts: ReadOptions, time_column, wanted, text_time):
         raise DataError(f"the file cannot be read as delimited text: {exc}", where=str(path)) from None
     needed = _needed_columns(header, opts, time_column, wanted)
     _require_columns(path, header, needed, opts, f"header (line {opts.header_row})")
-    dtypes = {}
-    if time_column and text_time:
-        dtypes[time_column] = "str"
-    if opts.layout == "long":
-        dtypes[opts.tag_column] = "str"
-        if opts.quality_column:
-            dtypes[opts.quality_column] = "str"
-    else:
-        for t, q in wanted.items():
-            if q and q in header:
-                dtypes[q] = "str"
+    first_data_line = opts.header_row + opts.skip_after_header + 1
+    # no dtype is forced: pandas reads text columns as text anyway, and forcing it is slower;
+    # numbers in a text column (quality codes, tag numbers) are normalized later
     try:
+        strip_map = {str(c).strip(): c for c in raw_cols}
         with open(path, "rb") as fh:
-            raw_cols = pd.read_csv(fh, nrows=0, **common).columns
-            strip_map = {str(c).strip(): c for c in raw_cols}
-            fh.seek(0)
-            frame = pd.read_csv(fh, usecols=[strip_map[c] for c in needed],
-                                dtype={strip_map[k]: v for k, v in dtypes.items()}, **common)
+            frame = pd.read_csv(fh, usecols=[strip_map[c] for c in needed], **common)
     except UnicodeDecodeError as exc:
         raise DataError(f"the file is not {opts.encoding} text (byte {exc.start})", where=str(path),
                         hint="set encoding to match the export") from None
@@ -143,7 +133,6 @@ def _csv_frame(path: Path, opts: ReadOptions, time_column, wanted, text_time):
         raise DataError(f"the file cannot be read as delimited text: {exc}", where=str(path),
                         hint="check delimiter and quoting") from None
     frame.columns = [str(c).strip() for c in frame.columns]
-    first_data_line = opts.header_row + opts.skip_after_header + 1
     numbers = np.arange(len(frame), dtype=np.int64) + first_data_line
     return frame, "line", numbers, header
 
@@ -221,12 +210,26 @@ def to_numbers(col: pd.Series, decimal: str, describe) -> np.ndarray:
     return nums.to_numpy(dtype=float, na_value=np.nan)
 
 
-def normalize_quality_column(col: pd.Series) -> np.ndarray:
-    from graybox.data.config import normalize_quality
+class QualityVocab:
+    """The quality texts met so far (normalized), numbered: flags travel as int32 codes into
+    this list, shared by every file of an experiment (so codes compare across files)."""
 
-    codes, uniq = pd.factorize(col, sort=False)
-    norm = np.array([normalize_quality(u) for u in uniq] + [""], dtype=object)
-    return norm[codes]  # code -1 (missing) maps to ""
+    def __init__(self):
+        self.texts: list[str] = []
+        self._index: dict[str, int] = {}
+
+    def code(self, text: str) -> int:
+        if text not in self._index:
+            self._index[text] = len(self.texts)
+            self.texts.append(text)
+        return self._index[text]
+
+    def codes_of(self, col: pd.Series) -> np.ndarray:
+        from graybox.data.config import normalize_quality
+
+        codes, uniq = pd.factorize(col, sort=False)
+        table = np.array([self.code(normalize_quality(u)) for u in uniq] + [self.code("")], dtype=np.int32)
+        return table[codes]  # code -1 (missing) maps to the blank flag
 
 
 def _drop_empty_rows(frame: pd.DataFrame, numbers: np.ndarray):
@@ -238,7 +241,8 @@ def _drop_empty_rows(frame: pd.DataFrame, numbers: np.ndarray):
 
 
 def _to_raw(path: Path, frame: pd.DataFrame, word: str, numbers: np.ndarray, opts: ReadOptions,
-            time_column: str | None, wanted: dict[str, str | None], header: list[str]) -> RawTable:
+            time_column: str | None, wanted: dict[str, str | None], header: list[str],
+            vocab: QualityVocab) -> RawTable:
     frame, numbers = _drop_empty_rows(frame, numbers)
     if len(frame) == 0:
         raise DataError("the file has a header but no data rows", where=str(path), hint="export the data again")
@@ -254,25 +258,44 @@ def _to_raw(path: Path, frame: pd.DataFrame, word: str, numbers: np.ndarray, opt
             if tag not in frame.columns:
                 continue
             values = to_numbers(frame[tag], opts.decimal, locate(tag))
-            quality = normalize_quality_column(frame[qcol]) if qcol and qcol in frame.columns else None
+            quality = vocab.codes_of(frame[qcol]) if qcol and qcol in frame.columns else None
             if qcol and qcol not in frame.columns:
                 raise DataError(f"no quality column '{qcol}' for tag '{tag}'", where=str(path),
                                 hint="check the tag's quality_column")
             tags[tag] = TagRaw(tag, values, quality, np.arange(len(frame)))
         return RawTable(path, word, numbers, time, tags, present, time_column)
-    tag_col = frame[opts.tag_column].astype("str").str.strip()
-    codes, names = pd.factorize(tag_col, sort=False)
-    names = [str(n) for n in names]
-    values_all = None
+    tag_col = frame[opts.tag_column]
+    if isinstance(tag_col.dtype, pd.CategoricalDtype):
+        codes = np.asarray(tag_col.cat.codes, dtype=np.int64)
+        names = [str(n).strip() for n in tag_col.cat.categories]
+    else:
+        if not pd.api.types.is_string_dtype(tag_col.dtype) or tag_col.dtype == object:
+            tag_col = tag_col.astype("str")
+        codes, names = pd.factorize(tag_col, sort=False)
+        names = [str(n).strip() for n in names]
+    value_col = frame[opts.value_column]
+    numeric = pd.api.types.is_numeric_dtype(value_col.dtype) and not pd.api.types.is_bool_dtype(value_col.dtype)
+    all_values = value_col.to_numpy(dtype=float, na_value=np.nan) if numeric else None
+    all_quality = vocab.codes_of(frame[opts.quality_column]) if opts.quality_column else None
+    small = codes.astype(np.int16) if len(names) < 32000 else codes  # 16-bit keys sort by radix
+    order = np.argsort(small, kind="stable")
+    bounds = np.searchsorted(codes[order], np.arange(len(names) + 1))
     for k, name in enumerate(names):
         if name not in wanted:
             continue
-        rows = np.flatnonzero(codes == k)
-        col = frame[opts.value_column].iloc[rows].reset_index(drop=True)
-        values = to_numbers(col, opts.decimal, lambda i, r=rows: locate(opts.value_column)(int(r[i])))
-        quality = None
-        if opts.quality_column:
-            quality = normalize_quality_column(frame[opts.quality_column].iloc[rows].reset_index(drop=True))
+        rows = order[bounds[k]:bounds[k + 1]]
+        if all_values is not None:
+            values = all_values[rows]
+        else:  # text in the value column: parse this tag's cells only (other tags may hold text)
+            col = value_col.iloc[rows].reset_index(drop=True)
+            values = to_numbers(col, opts.decimal, lambda i, r=rows: locate(opts.value_column)(int(r[i])))
+        quality = all_quality[rows] if all_quality is not None else None
+        if name in tags:  # the same tag written two ways (e.g. with trailing blanks): merge in order
+            prev = tags[name]
+            merged = np.concatenate([prev.rows, rows])
+            o = np.argsort(merged, kind="stable")
+            values = np.concatenate([prev.values, values])[o]
+            quality = None if quality is None else np.concatenate([prev.quality, quality])[o]
+            rows = merged[o]
         tags[name] = TagRaw(name, values, quality, rows)
-    del values_all
     return RawTable(path, word, numbers, time, tags, tuple(names), time_column)

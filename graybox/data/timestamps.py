@@ -33,7 +33,6 @@ _DAY_NS = 86_400 * 10**9
 _SERIAL_1900_BASE = np.datetime64("1899-12-30T00:00:00", "ns").astype(np.int64)
 _SERIAL_1904_BASE = np.datetime64("1904-01-01T00:00:00", "ns").astype(np.int64)
 
-_ISO_OFFSET = re.compile(r"\d(?:[Zz]|[+-]\d{2}(?::?\d{2})?)$")
 _ISO_OFFSET_PD = r"[T ]\d{1,2}:\d{2}(?::\d{2}(?:[.,]\d+)?)?\s*(?:[Zz]|[+-]\d{2}(?::?\d{2})?)$"
 _WALL = (r"^\s*(\d{1,4})[-/.](\d{1,2})[-/.](\d{1,4})"
          r"(?:[T ]+(\d{1,2}):(\d{2})(?::(\d{2})(?:[.,](\d{1,9}))?)?)?\s*([AaPp]\.?[Mm]\.?)?\s*$")
@@ -107,6 +106,10 @@ def _check_blank(raw: pd.Series, place: Place) -> None:
 
 def _kind(raw: pd.Series, place: Place) -> str:
     dtype = raw.dtype
+    if isinstance(dtype, pd.CategoricalDtype):  # dictionary-encoded text from the fast reader
+        dtype = dtype.categories.dtype
+        if pd.api.types.is_string_dtype(dtype):
+            return "text"
     if isinstance(dtype, pd.DatetimeTZDtype):
         return "aware"
     if pd.api.types.is_datetime64_dtype(dtype):
@@ -176,17 +179,50 @@ def serial_to_wall_ns(days: np.ndarray, system: str, place: Place | None = None)
 
 
 def _first_rows(codes: np.ndarray, n_unique: int) -> np.ndarray:
-    """The first row index of each unique value (pd.factorize numbers them in order of appearance)."""
-    _, idx = np.unique(codes, return_index=True)
+    """The first row index of each unique value (pd.factorize numbers them in order of
+    appearance, so a code's first row is where the running maximum grows)."""
+    prev = np.maximum.accumulate(np.concatenate([[-1], codes[:-1]]))
+    idx = np.flatnonzero(codes > prev)
     return idx[:n_unique]
 
 
+def _matches(u: pd.Series, pattern: str) -> np.ndarray:
+    """Regex search over text, in pyarrow's engine when it can (RE2; much faster)."""
+    try:
+        import pyarrow as pa
+        import pyarrow.compute as pc
+
+        arr = pa.array(u.to_numpy(dtype=object), type=pa.string())
+        return np.asarray(pc.match_substring_regex(arr, pattern).to_numpy(zero_copy_only=False), dtype=bool)
+    except Exception:  # noqa: BLE001 - pyarrow missing or pattern unsupported: plain pandas
+        return u.str.contains(pattern, regex=True).to_numpy(dtype=bool)
+
+
+def _codes(raw: pd.Series) -> tuple[np.ndarray, object]:
+    """Codes and values of a text column, numbered in order of appearance.  Exports sorted
+    by time repeat each stamp in a run (one row per tag): runs are found by comparing
+    neighbours (cheap in pyarrow), and hashing is used only when runs do not pay."""
+    pa_arr = getattr(raw.array, "_pa_array", None)
+    if pa_arr is not None and len(raw) > 1000:
+        import pyarrow.compute as pc
+
+        arr = pa_arr.combine_chunks()
+        change = np.empty(len(arr), bool)
+        change[0] = True
+        change[1:] = pc.not_equal(arr[1:], arr[:-1]).to_numpy(zero_copy_only=False)
+        starts = np.flatnonzero(change)
+        if starts.size <= 0.5 * len(arr):
+            codes = np.cumsum(change) - 1
+            return codes, raw.iloc[starts].to_numpy()
+    return pd.factorize(raw, sort=False)
+
+
 def _iso_text(raw: pd.Series, place: Place) -> Stamps:
-    codes, uniq = pd.factorize(raw, sort=False)
+    codes, uniq = _codes(raw)
     u = pd.Series(uniq, dtype="str").str.strip()
-    aware = u.str.contains(_ISO_OFFSET_PD, regex=True).to_numpy(dtype=bool)
-    first = _first_rows(codes, len(u))
+    aware = _matches(u, _ISO_OFFSET_PD)
     if not aware.all():
+        first = _first_rows(codes, len(u))
         naive_i = int(first[np.flatnonzero(~aware)].min())
         if aware.any():
             aware_i = int(first[np.flatnonzero(aware)].min())
@@ -200,7 +236,7 @@ def _iso_text(raw: pd.Series, place: Place) -> Stamps:
     parsed = pd.to_datetime(u.str.replace(",", ".", regex=False), format="ISO8601", utc=True, errors="coerce")
     bad = parsed.isna().to_numpy()
     if bad.any():
-        i = int(first[np.flatnonzero(bad)].min())
+        i = int(_first_rows(codes, len(u))[np.flatnonzero(bad)].min())
         raise DataError(f"'{raw.iloc[i]}' is not an ISO 8601 date and time", where=place.at(i),
                         hint="write e.g. 2026-01-05T06:00:00+01:00")
     uns = np.asarray(pd.DatetimeIndex(parsed).as_unit("ns").asi8, np.int64)
@@ -211,17 +247,19 @@ def _wall_text(raw: pd.Series, spec: TimeSpec, place: Place) -> np.ndarray:
     """Wall-clock nanoseconds (as if UTC) of local date-time text, by the declared order and clock."""
     codes, uniq = pd.factorize(raw, sort=False)
     u = pd.Series(uniq, dtype="str")
-    first = _first_rows(codes, len(u))
     parts = u.str.extract(_WALL)
     nomatch = parts[0].isna().to_numpy()
+
+    def first_rows():
+        return _first_rows(codes, len(u))
     if nomatch.any():
-        i = int(first[np.flatnonzero(nomatch)].min())
+        i = int(first_rows()[np.flatnonzero(nomatch)].min())
         raise DataError(f"'{raw.iloc[i]}' is not a date and time", where=place.at(i),
                         hint="local stamps look like 2026-01-05 06:00:00, 05.01.2026 06:00 or 1/5/2026 6:00 AM; an "
                              "offset (+01:00) means time_format = \"iso\"")
 
     def row_of(mask) -> int:
-        return int(first[np.flatnonzero(np.asarray(mask, bool))].min())
+        return int(first_rows()[np.flatnonzero(np.asarray(mask, bool))].min())
 
     a, b, c = parts[0], parts[1], parts[2]
     year_first = (a.str.len() == 4).to_numpy()
@@ -314,7 +352,6 @@ def localize(wall_ns: np.ndarray, tz: str, groups: np.ndarray | None = None) -> 
     ``groups`` (one code per row, e.g. the tag in a long table) keeps each group's own
     order: rows of one group are compared only with earlier rows of the same group."""
     wall_ns = np.asarray(wall_ns, np.int64)
-    n = wall_ns.size
     codes, uniq = pd.factorize(wall_ns, sort=False)
     idx = pd.DatetimeIndex(np.asarray(uniq, np.int64).view("M8[ns]"))
     m = len(idx)
