@@ -321,7 +321,9 @@ def _tag_report(td: TagData, spec: DataSpec, start: int | None, end: int | None)
         spread = float(q75 - q25)
     tu = t[use]
     if tu.size and start is not None and end is not None and end > start:
-        lim = limit if limit is not None else (3.0 * med if med else None)
+        # without a gap limit: three median intervals for a sampled tag; none for a tag logged
+        # by exception (its value holds between changes, however long)
+        lim = limit if limit is not None else (None if td.spec.logging == "exception" or not med else 3.0 * med)
         gaps = gaps_of(tu, lim)
         if limit is not None:
             n_gaps = len(gaps)

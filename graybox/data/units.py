@@ -222,7 +222,8 @@ def tag_conversion(spec: TagUnits, model_units: str, *, tag: str, where: str) ->
     if scale == 1.0 and offset == 0.0 and not steps:
         return IDENTITY if tag_u == model_u else Conversion(1.0, 0.0, f"{text} (factor 1)")
     steps.append(text)
-    return Conversion(scale, offset, f"{'; '.join(steps)}: x*{scale:.7g}" + (f" + {offset:.7g}" if offset else ""))
+    sign = f" + {offset:.7g}" if offset > 0 else (f" - {-offset:.7g}" if offset < 0 else "")
+    return Conversion(scale, offset, f"{'; '.join(steps)}: x*{scale:.7g}{sign}")
 
 
 def _temperature_fn(spec: TagUnits, tag_u, model_u, tag: str, where: str):
