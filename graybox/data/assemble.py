@@ -82,12 +82,8 @@ def ns_to_datetime(ns: int) -> datetime:
 # -- reading -------------------------------------------------------------------------------
 def read_files(spec: DataSpec, vocab: QualityVocab | None = None
                ) -> tuple[dict[str, list[Chunk]], tuple[dict, ...], dict[int, RawTable]]:
-    """Every file's rows of every wanted tag, stamped; and the sources read (hashed in a
-    thread while the file is parsed: hashlib lets go of the interpreter lock)."""
-    from concurrent.futures import ThreadPoolExecutor
-
+    """Every file's rows of every wanted tag, stamped; and the sources read."""
     vocab = vocab if vocab is not None else QualityVocab()
-    pool = ThreadPoolExecutor(max_workers=1)
     wanted: dict[str, str | None] = {}
     for tg in spec.tags:
         wanted.setdefault(tg.tag, tg.quality_column)
@@ -97,9 +93,8 @@ def read_files(spec: DataSpec, vocab: QualityVocab | None = None
     tables: dict[int, RawTable] = {}
     static_offset = 0
     for k, path in enumerate(spec.files):
-        digest = pool.submit(file_sha256, path)
+        sources.append({"path": str(path), "sha256": file_sha256(path)})
         table = read_table(path, spec.read, spec.time.column, wanted, text_time, vocab)
-        sources.append({"path": str(path), "sha256": digest.result()})
         tables[k] = table
         if not table.tags:
             continue
@@ -117,23 +112,26 @@ def read_files(spec: DataSpec, vocab: QualityVocab | None = None
             static_offset += n
             gap_all = np.zeros(n, bool)
         else:
+            every = used.size == len(table.numbers)
             groups = None
-            if spec.read.layout == "long":
-                groups = np.full(len(table.numbers), -1, np.int64)
+            if spec.read.layout == "long" and spec.time.format not in ("iso", "epoch_s"):
+                groups = np.full(len(table.numbers), -1, np.int64)  # wall clocks resolve per tag
                 for gi, tr in enumerate(table.tags.values()):
                     groups[tr.rows] = gi
-                groups = groups[used]
-            place = Place(str(path), table.word, table.numbers[used], spec.time.column)
-            raw_time = table.time if used.size == len(table.numbers) else table.time.iloc[used]
+                groups = groups if every else groups[used]
+            place = Place(str(path), table.word, table.numbers if every else table.numbers[used], spec.time.column)
+            raw_time = table.time if every else table.time.iloc[used]
             stamps = parse_stamps(raw_time, spec.time, place, groups)
-            t_all = np.full(len(table.numbers), NAT, np.int64)
-            gap_all = np.zeros(len(table.numbers), bool)
-            t_all[used] = stamps.utc_ns
-            gap_all[used] = stamps.nonexistent
+            if every:
+                t_all, gap_all = stamps.utc_ns, stamps.nonexistent
+            else:
+                t_all = np.full(len(table.numbers), NAT, np.int64)
+                gap_all = np.zeros(len(table.numbers), bool)
+                t_all[used] = stamps.utc_ns
+                gap_all[used] = stamps.nonexistent
         for name, tr in table.tags.items():
             chunks.setdefault(name, []).append(Chunk(k, table.word, table.numbers[tr.rows], t_all[tr.rows],
                                                      gap_all[tr.rows], tr.values, tr.quality))
-    pool.shutdown()
     return chunks, tuple(sources), tables
 
 
@@ -315,10 +313,8 @@ def _tag_report(td: TagData, spec: DataSpec, start: int | None, end: int | None)
     n_gaps = 0
     limit = gap_limit(td.spec, spec)
     if t.size >= 2:
-        d = np.diff(t) / 1e9
-        med = float(np.median(d))
-        q75, q25 = np.percentile(d, [75, 25])
-        spread = float(q75 - q25)
+        q25, q50, q75 = np.percentile(np.diff(t), [25, 50, 75]) / 1e9
+        med, spread = float(q50), float(q75 - q25)
     tu = t[use]
     if tu.size and start is not None and end is not None and end > start:
         # without a gap limit: three median intervals for a sampled tag; none for a tag logged

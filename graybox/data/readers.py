@@ -227,7 +227,12 @@ class QualityVocab:
     def codes_of(self, col: pd.Series) -> np.ndarray:
         from graybox.data.config import normalize_quality
 
-        codes, uniq = pd.factorize(col, sort=False)
+        from graybox.data.columns import text_codes
+
+        if col.isna().any() or not pd.api.types.is_string_dtype(col.dtype):
+            codes, uniq = pd.factorize(col, sort=False)
+        else:
+            codes, uniq = text_codes(col)
         table = np.array([self.code(normalize_quality(u)) for u in uniq] + [self.code("")], dtype=np.int32)
         return table[codes]  # code -1 (missing) maps to the blank flag
 
@@ -269,9 +274,11 @@ def _to_raw(path: Path, frame: pd.DataFrame, word: str, numbers: np.ndarray, opt
         codes = np.asarray(tag_col.cat.codes, dtype=np.int64)
         names = [str(n).strip() for n in tag_col.cat.categories]
     else:
+        from graybox.data.columns import text_codes
+
         if not pd.api.types.is_string_dtype(tag_col.dtype) or tag_col.dtype == object:
             tag_col = tag_col.astype("str")
-        codes, names = pd.factorize(tag_col, sort=False)
+        codes, names = text_codes(tag_col)
         names = [str(n).strip() for n in names]
     value_col = frame[opts.value_column]
     numeric = pd.api.types.is_numeric_dtype(value_col.dtype) and not pd.api.types.is_bool_dtype(value_col.dtype)

@@ -25,6 +25,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from graybox.data.columns import regex_matches, text_codes
 from graybox.data.config import TimeSpec
 from graybox.errors import DataError
 
@@ -186,41 +187,10 @@ def _first_rows(codes: np.ndarray, n_unique: int) -> np.ndarray:
     return idx[:n_unique]
 
 
-def _matches(u: pd.Series, pattern: str) -> np.ndarray:
-    """Regex search over text, in pyarrow's engine when it can (RE2; much faster)."""
-    try:
-        import pyarrow as pa
-        import pyarrow.compute as pc
-
-        arr = pa.array(u.to_numpy(dtype=object), type=pa.string())
-        return np.asarray(pc.match_substring_regex(arr, pattern).to_numpy(zero_copy_only=False), dtype=bool)
-    except Exception:  # noqa: BLE001 - pyarrow missing or pattern unsupported: plain pandas
-        return u.str.contains(pattern, regex=True).to_numpy(dtype=bool)
-
-
-def _codes(raw: pd.Series) -> tuple[np.ndarray, object]:
-    """Codes and values of a text column, numbered in order of appearance.  Exports sorted
-    by time repeat each stamp in a run (one row per tag): runs are found by comparing
-    neighbours (cheap in pyarrow), and hashing is used only when runs do not pay."""
-    pa_arr = getattr(raw.array, "_pa_array", None)
-    if pa_arr is not None and len(raw) > 1000:
-        import pyarrow.compute as pc
-
-        arr = pa_arr.combine_chunks()
-        change = np.empty(len(arr), bool)
-        change[0] = True
-        change[1:] = pc.not_equal(arr[1:], arr[:-1]).to_numpy(zero_copy_only=False)
-        starts = np.flatnonzero(change)
-        if starts.size <= 0.5 * len(arr):
-            codes = np.cumsum(change) - 1
-            return codes, raw.iloc[starts].to_numpy()
-    return pd.factorize(raw, sort=False)
-
-
 def _iso_text(raw: pd.Series, place: Place) -> Stamps:
-    codes, uniq = _codes(raw)
-    u = pd.Series(uniq, dtype="str").str.strip()
-    aware = _matches(u, _ISO_OFFSET_PD)
+    codes, uniq = text_codes(raw)
+    u = uniq.astype("str").str.strip()
+    aware = regex_matches(u, _ISO_OFFSET_PD)
     if not aware.all():
         first = _first_rows(codes, len(u))
         naive_i = int(first[np.flatnonzero(~aware)].min())

@@ -1,0 +1,63 @@
+"""Fast coding of text columns: integer codes in order of appearance and the distinct values.
+
+Historian exports repeat themselves: a long table sorted by time repeats each stamp once per
+tag, and a quality column is "Good" for long runs.  Where runs of equal neighbours cover the
+column in few pieces they are found by comparing neighbours (cheap in pyarrow); otherwise the
+values are hashed (pandas.factorize).  Codes then number *runs* rather than distinct values,
+which every caller accepts: each code stands for one value, and the first row of each code
+comes in increasing order.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+_PROBE = 4096
+
+
+def _arrow(series: pd.Series):
+    arr = getattr(series.array, "_pa_array", None)
+    return None if arr is None else arr.combine_chunks()
+
+
+def text_codes(series: pd.Series) -> tuple[np.ndarray, pd.Series]:
+    """``(codes, values)``: ``values.iloc[codes]`` reproduces the column (nulls have code -1
+    when hashed; callers reject or map nulls before)."""
+    arr = _arrow(series)
+    n = len(series)
+    if arr is not None and n > 2 * _PROBE and arr.null_count == 0:
+        import pyarrow.compute as pc
+
+        probe = arr[:_PROBE]
+        if pc.sum(pc.not_equal(probe[1:], probe[:-1])).as_py() <= _PROBE // 4:
+            change = np.empty(n, bool)
+            change[0] = True
+            change[1:] = pc.not_equal(arr[1:], arr[:-1]).to_numpy(zero_copy_only=False)
+            starts = np.flatnonzero(change)
+            if starts.size <= n // 4:
+                codes = np.repeat(np.arange(starts.size, dtype=np.int64), np.diff(np.append(starts, n)))
+                return codes, series.iloc[starts].reset_index(drop=True)
+    if arr is not None:
+        import pyarrow.compute as pc
+
+        enc = pc.dictionary_encode(arr)  # what pandas.factorize does on arrow text, minus its wrapping
+        codes = enc.indices.to_numpy(zero_copy_only=False)
+        codes = np.where(np.isnan(codes), -1, codes).astype(np.int64) if enc.null_count else codes.astype(np.int64)
+        return codes, pd.Series(enc.dictionary.to_pandas(), dtype=series.dtype)
+    codes, uniq = pd.factorize(series, sort=False)
+    return codes, pd.Series(uniq)
+
+
+def regex_matches(texts: pd.Series, pattern: str) -> np.ndarray:
+    """Whether each text contains a match of ``pattern``: in pyarrow's RE2 engine when the
+    column is arrow-backed (much faster), else in Python's."""
+    arr = _arrow(texts)
+    if arr is not None:
+        try:
+            import pyarrow.compute as pc
+
+            return np.asarray(pc.match_substring_regex(arr, pattern).to_numpy(zero_copy_only=False), dtype=bool)
+        except Exception:  # noqa: BLE001 - pattern RE2 cannot run: fall back
+            pass
+    return texts.astype("str").str.contains(pattern, regex=True).to_numpy(dtype=bool)
