@@ -171,10 +171,10 @@ def _concat(chunks: list[Chunk]):
 
 
 def _dedupe(t, v, q):
-    """Indices to keep after a stable sort; counts of exact and conflicting duplicates, and
-    the (earlier, later) positions of the first conflict."""
+    """Indices to keep after a stable sort (None: all, in the order given); counts of exact
+    and conflicting duplicates, and the (earlier, later) positions of the first conflict."""
     if t.size < 2 or bool(np.all(t[1:] > t[:-1])):  # already strictly increasing: nothing to do
-        return np.arange(t.size), 0, 0, None
+        return None, 0, 0, None
     order = np.argsort(t, kind="stable")
     ts, vs = t[order], v[order]
     same_t = np.zeros(ts.size, bool)
@@ -213,18 +213,20 @@ def process_tag(tg: TagSpec, chunks: list[Chunk], spec: DataSpec, conv: Conversi
             inside &= ~_in_windows(t, spec.exclude)
         outside = int((keep & ~inside).sum())
         keep &= inside
-    idx = np.flatnonzero(keep)
-    t, v = t[idx], v[idx]
-    q = q[idx] if q is not None else None
-    file_idx, numbers = file_idx[idx], numbers[idx]
+    idx = None if keep.all() else np.flatnonzero(keep)
+    if idx is not None:
+        t, v = t[idx], v[idx]
+        q = q[idx] if q is not None else None
     order, n_exact, n_conflict, example = _dedupe(t, v, q)
     conflict_text = None
     if example is not None:
         a, b = example
-        conflict_text = (f"{spec.files[file_idx[a]]} {chunks[0].word} {numbers[a]} ({v[a]:g}) and "
-                         f"{spec.files[file_idx[b]]} {chunks[0].word} {numbers[b]} ({v[b]:g}) at {iso(int(t[a]))}")
-    t, v = t[order], v[order]
-    q = q[order] if q is not None else None
+        ra, rb = (a, b) if idx is None else (int(idx[a]), int(idx[b]))  # rows in the concatenation
+        conflict_text = (f"{spec.files[file_idx[ra]]} {chunks[0].word} {numbers[ra]} ({v[a]:g}) and "
+                         f"{spec.files[file_idx[rb]]} {chunks[0].word} {numbers[rb]} ({v[b]:g}) at {iso(int(t[a]))}")
+    if order is not None:
+        t, v = t[order], v[order]
+        q = q[order] if q is not None else None
     repeats = 0
     if tg.logging == "exception" and v.size:
         rep = held_repeats(v)

@@ -16,15 +16,17 @@ import pandas as pd
 _PROBE = 4096
 
 
-def _arrow(series: pd.Series):
+def _arrow(series: pd.Series, combine: bool = True):
     arr = getattr(series.array, "_pa_array", None)
-    return None if arr is None else arr.combine_chunks()
+    if arr is None or not combine:
+        return arr
+    return arr.combine_chunks()
 
 
 def text_codes(series: pd.Series) -> tuple[np.ndarray, pd.Series]:
     """``(codes, values)``: ``values.iloc[codes]`` reproduces the column (nulls have code -1
     when hashed; callers reject or map nulls before)."""
-    arr = _arrow(series)
+    arr = _arrow(series, combine=False)
     n = len(series)
     if arr is not None and n > 2 * _PROBE and arr.null_count == 0:
         import pyarrow.compute as pc
@@ -41,7 +43,7 @@ def text_codes(series: pd.Series) -> tuple[np.ndarray, pd.Series]:
     if arr is not None:
         import pyarrow.compute as pc
 
-        enc = pc.dictionary_encode(arr)  # what pandas.factorize does on arrow text, minus its wrapping
+        enc = pc.dictionary_encode(arr.combine_chunks())  # what pandas.factorize does on arrow text, minus its wrapping
         codes = enc.indices.to_numpy(zero_copy_only=False)
         codes = np.where(np.isnan(codes), -1, codes).astype(np.int64) if enc.null_count else codes.astype(np.int64)
         return codes, pd.Series(enc.dictionary.to_pandas(), dtype=series.dtype)
