@@ -15,7 +15,7 @@ import numpy as np
 
 from graybox.estimate.problem import Problem
 from graybox.posterior.noise import NoiseLayout
-from graybox.posterior.priors import Prior, log_prior_sampled
+from graybox.posterior.priors import KIND_FLAT, KIND_UNIFORM, Prior
 
 
 @dataclass
@@ -32,6 +32,14 @@ class LogPosterior:
     def __post_init__(self):
         self._observed = [{o: self.problem.observed(e, o) for o in self.problem.spec.output_names}
                           for e in range(len(self.problem.experiments))]
+        bounds = [p.sampled_bounds() for p in self.priors] + [(p.lower, p.upper) for p in self.layout.params]
+        self._lo = np.array([b[0] for b in bounds], float)
+        self._hi = np.array([b[1] for b in bounds], float)
+        self._upper_open = np.array([False] * self.n_free + [p.what == "phi" for p in self.layout.params])
+        self._log_free = np.array([p.log_scale for p in self.priors], bool)
+        self._shaped = [j for j, p in enumerate(self.priors) if p.kind not in (KIND_UNIFORM, KIND_FLAT)]
+        self._log_noise = np.array([p.what != "phi" for p in self.layout.params], bool)
+        self._nu_cols = [self.n_free + k for k, p in enumerate(self.layout.params) if p.what == "log_nu"]
 
     @property
     def n_free(self) -> int:
@@ -48,26 +56,44 @@ class LogPosterior:
     # -- transforms --------------------------------------------------------------------------
     def free_values(self, Z: np.ndarray) -> np.ndarray:
         """Natural free vectors from sampled rows."""
-        Z = np.atleast_2d(Z)
-        return np.column_stack([p.from_sampled(Z[:, j]) for j, p in enumerate(self.priors)])
+        X = np.array(np.atleast_2d(Z)[:, : self.n_free], float)
+        X[:, self._log_free] = np.exp(X[:, self._log_free])
+        return X
 
     def natural(self, Z: np.ndarray) -> np.ndarray:
         """Every sampled quantity in natural units (sigma, phi, nu for the noise part)."""
-        Z = np.atleast_2d(Z)
-        noise = [p.to_natural(Z[:, self.n_free + k]) for k, p in enumerate(self.layout.params)]
-        return np.column_stack([self.free_values(Z), *noise]) if noise else self.free_values(Z)
+        V = np.array(np.atleast_2d(Z), float)
+        log = np.concatenate([self._log_free, self._log_noise])
+        V[:, log] = np.exp(V[:, log])
+        return V
 
     def sampled(self, V: np.ndarray) -> np.ndarray:
         """Inverse of :meth:`natural`."""
-        V = np.atleast_2d(V)
-        cols = [p.to_sampled(V[:, j]) for j, p in enumerate(self.priors)]
-        cols += [p.to_sampled(V[:, self.n_free + k]) for k, p in enumerate(self.layout.params)]
-        return np.column_stack(cols)
+        Z = np.array(np.atleast_2d(V), float)
+        log = np.concatenate([self._log_free, self._log_noise])
+        Z[:, log] = np.log(Z[:, log])
+        return Z
 
     # -- densities ---------------------------------------------------------------------------
     def log_prior(self, Z: np.ndarray) -> np.ndarray:
+        """Sampled-space log prior of rows Z: the same as summing each Prior's and
+        NoiseParam's ``log_density_sampled`` / ``log_prior`` (support check, shaped
+        densities, log-Jacobians), vectorised over columns."""
         Z = np.atleast_2d(Z)
-        return log_prior_sampled(self.priors, Z[:, : self.n_free]) + self.layout.log_prior(Z[:, self.n_free:])
+        inside = np.all((Z >= self._lo) & np.where(self._upper_open, Z < self._hi, Z <= self._hi), axis=1)
+        inside &= np.all(np.isfinite(Z), axis=1)
+        lp = np.where(inside, 0.0, -np.inf)
+        if not inside.any():
+            return lp
+        Zi = Z[inside]
+        total = np.sum(Zi[:, : self.n_free][:, self._log_free], axis=1)  # log-Jacobians of log-scale values
+        for j in self._shaped:
+            p = self.priors[j]
+            total = total + p.log_density(p.from_sampled(Zi[:, j]))
+        for c in self._nu_cols:
+            total = total + self.layout.params[c - self.n_free].log_prior(Zi[:, c])
+        lp[inside] = total
+        return lp
 
     def log_likelihood(self, Z: np.ndarray) -> np.ndarray:
         """Log-likelihood of rows Z (all assumed inside the support)."""
