@@ -71,11 +71,12 @@ def run(argv: list[str] | None = None) -> int:
     from graybox import workflow
 
     if args.command == "fit":
-        workflow.fit_study(args.config, args.out, force=args.force, sample=not args.no_sample,
+        workflow.fit_study(args.config, args.out, force=args.force, sample=False if args.no_sample else None,
                            sampler_options=_sampler_overrides(args))
         return EXIT_OK
     if args.command == "demo":
-        workflow.run_demo(args.out, force=args.force, sample=not args.no_sample)
+        workflow.run_demo(args.out, force=args.force, sample=False if args.no_sample else None,
+                          sampler_options=_sampler_overrides(args))
         return EXIT_OK
     if args.command == "check":
         return workflow.check_study(args.config)

@@ -205,16 +205,39 @@ def fit_study(config: str | Path, out: str | Path, *, force: bool = False, echo:
 
     check_target(out.absolute(), force)
     study = with_seed(load_study(config, overrides), seed)
+    from graybox.posterior import predictive_bands, priors_from_spec, run_posterior, sampler_settings
+
+    sampling = sampler_settings(study.sampling, sampler_options)
+    do_sample = sampling.enabled if sample is None else bool(sample)
     for w in study.spec.warnings:
         echo(f"warning: {w}")
+    stages: dict[str, float] = {}
+    mark = time.perf_counter()
     prepared = prepare(study)
+    priors = priors_from_spec(study.spec, prepared.problem, study.path) if do_sample else None
     for name, rep in prepared.reports.items():
         echo(rep.summary())
     windows = informative_windows(study, prepared, echo)
+    stages["data_and_model_s"], mark = time.perf_counter() - mark, time.perf_counter()
     res = fit(prepared.problem, study.fit)
+    stages["least_squares_s"], mark = time.perf_counter() - mark, time.perf_counter()
     echo(res.summary())
     wall = time.perf_counter() - t0
     doc = results_document(study, prepared, res, started, wall)
+    post = None
+    bands = None
+    if do_sample:
+        post = run_posterior(prepared.problem, res, study.noise, sampling,
+                             sampling.seed if sampling.seed is not None else study.seed, priors=priors, file=study.path)
+        echo(post.summary())
+        for name, entry in post.to_parameters_dict().items():
+            doc["parameters"][name].update(entry)
+        for o, entry in post.to_noise_dict().items():
+            doc["noise"][o].update(entry)
+        doc["sampler"] = post.sampler_dict()
+        rng = np.random.default_rng(np.random.SeedSequence([study.seed, 0x62616E64]))  # "band"
+        bands = predictive_bands(prepared.problem, post, sampling.band_draws, rng)
+        stages["posterior_s"], mark = time.perf_counter() - mark, time.perf_counter()
     val_summary, val_traces = validate(prepared, res)
     if val_summary:
         doc["validation"] = val_summary
@@ -224,8 +247,17 @@ def fit_study(config: str | Path, out: str | Path, *, force: bool = False, echo:
     with building(out, force) as tmp:
         shutil.copyfile(study.path, tmp / "study.toml")
         traces = traces_for(prepared.problem, res.x)
+        if bands is not None:
+            by_key = {(ex.name, o): band for ex, exp_bands in zip(prepared.problem.experiments, bands)
+                      for o, band in exp_bands.items()}
+            for tr in traces:
+                tr.bands = by_key[(tr.experiment, tr.output)].trace_bands()
         write_fitted_csv(tmp / "fitted.csv", traces)
-        plot_overlay(tmp / "fit.png", traces, f"{study.name}: least-squares fit")
+        title = "least squares with posterior bands" if bands is not None else "least-squares fit"
+        plot_overlay(tmp / "fit.png", traces, f"{study.name}: {title}")
+        if post is not None:
+            post.save_samples(tmp / "samples.npz")
+            post.write_plots(tmp)
         if windows:
             from graybox.data.windows import write_windows
 
@@ -233,6 +265,8 @@ def fit_study(config: str | Path, out: str | Path, *, force: bool = False, echo:
         if val_traces:
             write_fitted_csv(tmp / "validation.csv", val_traces)
             plot_overlay(tmp / "validation.png", val_traces, f"{study.name}: held-out data, fitted parameters")
+        stages["writing_s"] = time.perf_counter() - mark
+        doc["run"]["stages"] = stages
         doc["run"]["wall_s"] = time.perf_counter() - t0
         write_json(tmp / RESULTS, doc)
     echo(f"run folder: {out}")
@@ -322,9 +356,10 @@ def demo_paths() -> tuple[Path, Path]:
     return cfg, data
 
 
-def run_demo(out: str | Path, *, force: bool = False, echo: Echo = print, sample: bool | None = None) -> dict:
+def run_demo(out: str | Path, *, force: bool = False, echo: Echo = print, sample: bool | None = None,
+             sampler_options: dict | None = None) -> dict:
     cfg, data = demo_paths()
-    doc = fit_study(cfg, out, force=force, echo=echo, sample=sample)
+    doc = fit_study(cfg, out, force=force, echo=echo, sample=sample, sampler_options=sampler_options)
     truth = json.loads((data / "truth.json").read_text())["parameters"]
     echo("demo truth check (values the data were generated with):")
     for name, value in truth.items():
@@ -333,4 +368,8 @@ def run_demo(out: str | Path, *, force: bool = False, echo: Echo = print, sample
         inside = lo <= value <= hi
         echo(f"  {name}: true {value:g}, estimate {p['estimate']:.6g}, 95% interval [{lo:.6g}, {hi:.6g}] "
              f"{'contains' if inside else 'MISSES'} the truth")
+        if "posterior" in p:
+            clo, chi = p["posterior"]["ci95"]
+            echo(f"  {name}: posterior median {p['posterior']['median']:.6g}, 95% credible interval "
+                 f"[{clo:.6g}, {chi:.6g}] {'contains' if clo <= value <= chi else 'MISSES'} the truth")
     return doc
