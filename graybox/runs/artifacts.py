@@ -93,6 +93,12 @@ def plot_overlay(path: Path, traces: list[OutputTrace], title: str) -> None:
         ax.set_ylabel(f"{tr.output} [{tr.units}]" if tr.units else tr.output)
         ax.set_title(f"{tr.experiment}: {tr.output}", fontsize=10, loc="left")
         ax.legend(loc="best", fontsize=8, frameon=False)
+        for label in ("prediction95", "credible95"):  # bands about the model: visible at residual scale
+            if label in tr.bands:
+                color, alpha, _ = BAND_STYLE[label]
+                lo, hi = tr.bands[label]
+                axr.fill_between(*_broken_at_gaps(hours, lo - tr.fitted), _broken_at_gaps(hours, hi - tr.fitted)[1],
+                                 color=color, alpha=alpha + 0.2, lw=0)
         axr.plot(hours, tr.residual, ".", ms=2, color="#2c3e50")
         axr.axhline(0.0, color="#c0392b", lw=0.8)
         axr.set_ylabel("residual")
