@@ -8,9 +8,10 @@ numba's own cache (``cache=True``) then stores the compiled machine code in the
 process importing the same file loads the machine code instead of compiling it.
 
 The folder is ``$GRAYBOX_CACHE_DIR`` when set, else ``~/.cache/graybox/compiled``.  Files are
-written to a temporary name in the same folder and moved into place with :func:`os.replace`
-(atomic on one file system), and an existing file is never rewritten (its time stamp is what
-numba's cache index checks), so processes racing to create the same module are harmless.
+written to a temporary name in the same folder and then given their name atomically (a hard
+link that fails if the name exists, else :func:`os.replace`), and an existing file is never
+rewritten (its time stamp is what numba's cache index checks), so processes racing to create
+the same module are harmless.
 """
 
 from __future__ import annotations
@@ -62,15 +63,25 @@ def write_once(folder: Path, stem: str, source: str) -> Path:
     try:
         with os.fdopen(fd, "w", encoding="utf-8") as fh:
             fh.write(source)
-        if path.exists():  # another process won the race: keep its file (and time stamp)
-            os.unlink(tmp)
-        else:
-            os.replace(tmp, path)
-    except BaseException:
+        _publish(tmp, path)
+    finally:
         if os.path.exists(tmp):
             os.unlink(tmp)
-        raise
     return path
+
+
+def _publish(tmp: str, path: Path) -> None:
+    """Move a complete temporary file into place unless ``path`` exists.  A hard link creates
+    the name atomically only if it is free, so of two racing processes the first file (and
+    its time stamp, which numba's cache index records) stays; where hard links are not
+    supported, :func:`os.replace` (atomic, last writer wins) is used."""
+    try:
+        os.link(tmp, path)
+    except FileExistsError:
+        pass
+    except OSError:
+        if not path.exists():
+            os.replace(tmp, path)
 
 
 def import_file(path: Path, name: str) -> ModuleType:

@@ -59,7 +59,6 @@ from graybox.simulate.timeline import SegmentPlan, Timeline
 
 JIT_OPTIONS = "cache=True, error_model='numpy', nogil=True"
 ARGS = ("x", "u", "p", "out")
-METHOD_CODES = {EXPLICIT: 0, IMPLICIT: 1}
 MODE_STORE, MODE_SSE = 0, 1
 PYTHON_RHS_NOTE = "the model's right-hand side is a Python function: reference path used"
 
@@ -471,7 +470,7 @@ _LU_FACTOR = [
 def _dopri_lines() -> list[str]:
     """One Dormand-Prince 5(4) step (arrays), as in integrators.dopri_step."""
     return [
-        "for st in range(6):",
+        "for st in range(n_st):",
         "    if st == 0:",
         "        inputs_at(us, slope, any_lin, 0.0, ui)",
         "        if not have_k1:",
@@ -564,7 +563,7 @@ def _rodas_lines() -> list[str]:
         "                    for m in range(N_U):",
         "                        acc += FPU[i, c, m] * slope[m]",
         "                St[i, c] = acc",
-        "for st in range(6):",
+        "for st in range(n_st):",
         "    if st == 0:",
         "        for i in range(N_X):",
         "            xi[i] = x[i]",
@@ -664,9 +663,11 @@ def _generic_observe_lines() -> list[str]:
     ]
 
 
-def generic_source() -> str:
-    """``generic_set``: one parameter set, either method, optional sensitivities, held or
-    linear inputs (the step bodies written inline: no calls with array arguments per step)."""
+def generic_source(method: str) -> str:
+    """``dopri_set`` or ``rodas_set``: one parameter set, optional sensitivities, held or
+    linear inputs (the step body written inline: no calls with array arguments per step).
+    One function per method, so that a model compiles only the methods it uses."""
+    explicit = method == EXPLICIT
     accept = [
         "for i in range(N_X):",
         "    x[i] = x_new[i]",
@@ -678,25 +679,22 @@ def generic_source() -> str:
         "h = min(h, span - s)",
         "for m in range(N_U):",
         "    us[m] = u[k, m] + slope[m] * s if any_lin else u[k, m]",
-        "if method == 0:",
-        *_indent(_dopri_lines(), 1),
-        "else:",
-        *_indent(_rodas_lines(), 1),
-        "have_k1 = method == 0",
+        *(_dopri_lines() if explicit else _rodas_lines()),
+        f"have_k1 = {explicit}",
         "en = error_norm(err, x, x_new, rtol, atol)",
         "finite = np.isfinite(en) and all_finite(x_new)",
-        *_step_control_lines(accept, "order"),
+        *_step_control_lines(accept, "5.0" if explicit else "4.0"),
     ]
     lines = [
         f"@njit({JIT_OPTIONS})",
-        "def generic_set(iset, t, u, lin, any_lin, p, x, S, method, sens, rtol, atol, knot_ptr, obs_r, obs_col,",
+        f"def {'dopri' if explicit else 'rodas'}_set(iset, t, u, lin, any_lin, p, x, S, sens, rtol, atol, knot_ptr, obs_r, obs_col,",
         "                mode, out_y, out_s, y_obs, w, ar, phi, dt_ref, sse, ssa, prev_r, prev_t, has_prev,",
         "                x_new, xi, err, ft, S_new, Si, St, K, KS, Bt, us, ui, slope, J, FX, E, piv, FP, FU,",
         "                FXX, FPX, FXU, FPU, G, GX, GP):",
-        '    """One parameter set: either method, sensitivities, held or linear inputs."""',
+        f'    """One parameter set, {"Dormand-Prince 5(4)" if explicit else "Rodas4"}: sensitivities, held or linear inputs."""',
         "    n_k = t.shape[0]",
         "    n_c = S.shape[1]",
-        "    order = 5.0 if method == 0 else 4.0",
+        "    n_st = K.shape[0] - 1  # 6 stages (a run-time count: the stage loop is not unrolled)",
         "    good = True",
         "    n_acc = 0",
         "    h = -1.0",
@@ -761,10 +759,10 @@ def inputs_at(us, slope, any_lin, ds, out):
             out[m] = us[m]
 '''
 
-RUN_SOURCE = '''
+_RUN_HEAD = '''
 @JIT
-def run_segment(t, u, lin, theta, x0, S0, ok, steps, method, sens, rtol, atol, knot_ptr, obs_r,
-                obs_col, mode, out_y, out_s, y_obs, w, ar, phi, dt_ref, sse, ssa):
+def NAME(t, u, lin, theta, x0, S0, ok, steps, retry, sens, rtol, atol, knot_ptr, obs_r, obs_col, mode,
+         out_y, out_s, y_obs, w, ar, phi, dt_ref, sse, ssa):
     """Integrate every parameter set (rows of theta) over one segment, each with its own
     adaptive step, restarted at every knot; observe at knots.  ok and steps are updated per
     set; a set already failed is skipped."""
@@ -774,7 +772,12 @@ def run_segment(t, u, lin, theta, x0, S0, ok, steps, method, sens, rtol, atol, k
     for m in range(N_U):
         if lin[m]:
             any_lin = True
-    fast = method == 0 and not sens and not any_lin and N_X > 0
+    prev_r = np.zeros(N_Y)
+    prev_t = np.zeros(N_Y)
+    has_prev = np.zeros(N_Y, np.bool_)
+'''
+
+_RUN_WORK = '''
     x = np.zeros(N_X)
     x_new = np.zeros(N_X)
     xi = np.zeros(N_X)
@@ -803,32 +806,52 @@ def run_segment(t, u, lin, theta, x0, S0, ok, steps, method, sens, rtol, atol, k
     G = np.zeros(N_Y)
     GX = np.zeros((N_Y, N_X))
     GP = np.zeros((N_Y, N_P))
-    prev_r = np.zeros(N_Y)
-    prev_t = np.zeros(N_Y)
-    has_prev = np.zeros(N_Y, np.bool_)
+'''
+
+_RUN_LOOP_FAST = '''
     for iset in range(n_sets):
         if not ok[iset]:
             continue
         for r in range(N_Y):
             has_prev[r] = False
-        p = theta[iset]
-        n_acc = 0
-        good = True
-        if fast:
-            good, n_acc = explicit_set(iset, t, u, p, x0[iset], rtol, atol, knot_ptr, obs_r, obs_col, mode,
-                                       out_y, y_obs, w, ar, phi, dt_ref, sse, ssa, prev_r, prev_t, has_prev)
-        if not fast or n_acc < 0:  # (n_acc < 0: a reciprocal the fast path cannot use)
-            for i in range(N_X):
-                x[i] = x0[iset, i]
-                for c in range(n_c):
-                    S[i, c] = S0[iset, i, c]
-            good, n_acc = generic_set(iset, t, u, lin, any_lin, p, x, S, method, sens, rtol, atol, knot_ptr,
-                                      obs_r, obs_col, mode, out_y, out_s, y_obs, w, ar, phi, dt_ref, sse, ssa,
-                                      prev_r, prev_t, has_prev, x_new, xi, err, ft, S_new, Si, St, K, KS, Bt,
-                                      us, ui, slope, J, FX, E, piv, FP, FU, FXX, FPX, FXU, FPU, G, GX, GP)
+        good, n_acc = explicit_set(iset, t, u, theta[iset], x0[iset], rtol, atol, knot_ptr, obs_r, obs_col, mode,
+                                   out_y, y_obs, w, ar, phi, dt_ref, sse, ssa, prev_r, prev_t, has_prev)
+        if n_acc < 0:  # a reciprocal the fast path cannot use: the caller reruns the set
+            retry[iset] = True
+            continue
         ok[iset] = good
         steps[iset] += n_acc
 '''
+
+_RUN_LOOP_GENERIC = '''
+    for iset in range(n_sets):
+        if not ok[iset]:
+            continue
+        for r in range(N_Y):
+            has_prev[r] = False
+        for i in range(N_X):
+            x[i] = x0[iset, i]
+            for c in range(n_c):
+                S[i, c] = S0[iset, i, c]
+        good, n_acc = SETFN(iset, t, u, lin, any_lin, theta[iset], x, S, sens, rtol, atol, knot_ptr,
+                            obs_r, obs_col, mode, out_y, out_s, y_obs, w, ar, phi, dt_ref, sse, ssa,
+                            prev_r, prev_t, has_prev, x_new, xi, err, ft, S_new, Si, St, K, KS, Bt,
+                            us, ui, slope, J, FX, E, piv, FP, FU, FXX, FPX, FXU, FPU, G, GX, GP)
+        ok[iset] = good
+        steps[iset] += n_acc
+'''
+
+
+def run_source(jit: str) -> str:
+    """The three entry kernels (same signature): ``run_fast`` (explicit, no sensitivities,
+    held inputs), ``run_dopri`` and ``run_rodas`` (the general paths).  Each compiles on first
+    use only."""
+    head = _RUN_HEAD.replace("@JIT", jit)
+    return "\n".join([
+        head.replace("NAME", "run_fast") + _RUN_LOOP_FAST,
+        head.replace("NAME", "run_dopri") + _RUN_WORK + _RUN_LOOP_GENERIC.replace("SETFN", "dopri_set"),
+        head.replace("NAME", "run_rodas") + _RUN_WORK + _RUN_LOOP_GENERIC.replace("SETFN", "rodas_set"),
+    ])
 
 
 def module_source(spec: ModelSpec) -> str:
@@ -840,8 +863,8 @@ def module_source(spec: ModelSpec) -> str:
     fast = fast_explicit_source(spec) if spec.states else (
         f"{jit}\ndef explicit_set(*args):\n    return False, 0\n")
     return "\n\n".join([header, sizes_source(spec), coefficients_source(), model_functions_source(spec),
-                        HELPERS_SOURCE.replace("@JIT", jit), fast, generic_source(),
-                        RUN_SOURCE.replace("@JIT", jit)])
+                        HELPERS_SOURCE.replace("@JIT", jit), fast, generic_source(EXPLICIT),
+                        generic_source(IMPLICIT), run_source(jit)])
 
 
 # ---------------------------------------------------------------------------------------------
@@ -945,12 +968,12 @@ class _Run:
 class CompiledModel:
     """The compiled simulator of one spec (build it with :func:`compile_model`)."""
 
-    def __init__(self, spec: ModelSpec, module: ModuleType):
+    def __init__(self, spec: ModelSpec, module: ModuleType, fast_path: bool = True):
         if spec.python_rhs is not None:
             raise ValueError(PYTHON_RHS_NOTE)
         self.spec = spec
         self.module = module
-        self.kernel = module.run_segment
+        self.fast_path = fast_path
         self.funcs: ModelFunctions = generate(spec)  # numpy functions: initial states, method choice
         self.digest = spec_digest(spec)
         self._tables: dict[int, tuple[weakref.ref, TimelineTables]] = {}
@@ -1116,10 +1139,24 @@ class CompiledModel:
                 run.messages.append(f"segment {seg.index + 1}: no steady state found for {int((~ok0).sum())} set(s)")
             run.ok &= ok0
             run.methods.append(method)
-            self.kernel(st.t, st.u, tab.lin, theta, x0, S0, run.ok, run.steps, METHOD_CODES.get(method, 0), bool(sens),
-                        float(tol.rtol), float(tol.atol), st.knot_ptr, st.obs_r, st.obs_col, mode, out_y, out_s,
-                        tab.y_obs, w, ar is not None, phi, dt_ref, sse, ssa)
+            args = (float(tol.rtol), float(tol.atol), st.knot_ptr, st.obs_r, st.obs_col, mode, out_y, out_s,
+                    tab.y_obs, w, ar is not None, phi, dt_ref, sse, ssa)
+            retry = np.zeros(n_sets, bool)
+            kernel = self.kernel_for(method, sens, bool(tab.lin.any()))
+            kernel(st.t, st.u, tab.lin, theta, x0, S0, run.ok, run.steps, retry, bool(sens), *args)
+            if retry.any():  # sets the fast path handed back: the general explicit path
+                again = retry.copy()
+                self.module.run_dopri(st.t, st.u, tab.lin, theta, x0, S0, again, run.steps, retry, bool(sens), *args)
+                run.ok[retry] = again[retry]
         return run
+
+    def kernel_for(self, method: str, sens: bool, any_linear: bool):
+        """The entry kernel for a segment: the scalar fast path when it applies."""
+        if method == IMPLICIT:
+            return self.module.run_rodas
+        if self.fast_path and method == EXPLICIT and not sens and not any_linear and not self.spec.is_static:
+            return self.module.run_fast
+        return self.module.run_dopri
 
 
 # ---------------------------------------------------------------------------------------------
@@ -1146,15 +1183,20 @@ def _module_for(digest: str, source: str) -> ModuleType:
 
 
 @lru_cache(maxsize=64)
-def _compile_cached(spec: ModelSpec) -> CompiledModel:
-    return CompiledModel(spec, _module_for(spec_digest(spec), module_source(spec)))
+def _compile_cached(spec: ModelSpec, fast_path: bool) -> CompiledModel:
+    return CompiledModel(spec, _module_for(spec_digest(spec), module_source(spec)), fast_path)
 
 
-def compile_model(spec: ModelSpec) -> CompiledModel:
-    """The compiled simulator of ``spec`` (cached in-process per spec, on disk per model)."""
+def compile_model(spec: ModelSpec, *, fast_path: bool = True) -> CompiledModel:
+    """The compiled simulator of ``spec`` (cached in-process per spec, on disk per model).
+
+    ``fast_path=False`` sends explicit runs without sensitivities through the general kernel,
+    whose arithmetic is in the reference's order of operations (bit-for-bit the same step
+    decisions as a one-set reference run); the default scalar fast path differs from it by
+    rounding only (a reciprocal instead of a division, reassociated stage sums)."""
     if not compiled_available(spec):
         raise ValueError(PYTHON_RHS_NOTE if spec.python_rhs is not None else "numba is not available")
-    return _compile_cached(spec)
+    return _compile_cached(spec, bool(fast_path))
 
 
 def simulate_auto(spec: ModelSpec, timeline: Timeline, theta, **kw) -> SimResult:
