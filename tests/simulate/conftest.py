@@ -38,6 +38,18 @@ REACTOR_P = {"k0": {"guess": 1.6e8, "units": "1/s"}, "Ea": {"guess": 5000.0, "un
              "beta": {"guess": 20.0, "units": "K"}, "tau_r": {"guess": 10.0, "units": "s"},
              "tau_c": {"guess": 5.0, "units": "s"}}
 
+# Every construct the parser accepts: each function of graybox.model.expr.FUNCTIONS, every
+# comparison, and/or/not, "a if c else b" and where(c, a, b), in a rate and in an output.
+CONSTRUCTS_RATE = (
+    "a*(exp(-z) + log(1 + z*z) + log10(2 + z*z) + sqrt(1 + z*z) + abs(u - z) + sin(z) + cos(z) + tan(0.2*z)"
+    " + tanh(z) + sinh(0.3*z) + cosh(0.3*z) + atan(z) + min(z, u) + max(z, u)"
+    " + (1.0 if (u > 0.5 and u < 2) or not (u >= 0.9) else -0.5)"
+    " + where(u <= 0.3, 0.25, -0.25) + (0.1 if u == 1.0 else 0.0) + (0.2 if u != 0.2 else -0.2)"
+    " + (0.3 if z > 0.4 else 0.0)) - b*z")
+CONSTRUCTS = {"states": {"z": {"units": "", "rate": CONSTRUCTS_RATE, "initial": "estimate"}}, "inputs": {"u": ""},
+              "outputs": {"zo": {"expr": "z + c*where(u > 1 or z < -5, sqrt(abs(z)), -tanh(z))"}}}
+CONSTRUCTS_P = {"a": {"guess": 0.1, "units": "1/s"}, "b": {"guess": 1.0, "units": "1/s"}, "c": {"guess": 0.5}}
+
 STATIC = {"inputs": {"u": ""}, "outputs": {"yv": {"expr": "a*u + b*u**2"}}}
 STATIC_P = {"a": {"guess": 1.5}, "b": {"guess": -0.3}}
 
@@ -51,7 +63,7 @@ def build(model: dict, params: dict, **state_changes):
 
 @lru_cache(maxsize=None)
 def lag_spec(initial="0.0"):
-    value = float(initial) if initial not in ("estimate", "steady") else initial
+    value = initial if initial in ("estimate", "steady", "measured") else float(initial)
     return build(LAG, LAG_P, y={"initial": value})
 
 
@@ -63,6 +75,11 @@ def tank_spec():
 @lru_cache(maxsize=None)
 def reactor_spec():
     return build(REACTOR, REACTOR_P)
+
+
+@lru_cache(maxsize=None)
+def constructs_spec():
+    return build(CONSTRUCTS, CONSTRUCTS_P)
 
 
 @lru_cache(maxsize=None)
@@ -95,6 +112,19 @@ def reactor_record(n: int = 61, dt: float = 1.0):
     t_in = 340.0 + 5.0 * steps(t, 25.0, 0.0, 1.0)
     return record_from_arrays("cstr", t, {"C_in": c_in, "T_in": t_in}, {"C": np.zeros(n), "T": np.full(n, 340.0)},
                               units={"T_in": "K", "T": "K"})
+
+
+def constructs_record(n: int = 81, seed: int = 3):
+    t = np.arange(n) * 1.0
+    rng = np.random.default_rng(seed)
+    levels = np.array([0.2, 0.3, 0.6, 1.0, 1.5, 2.5])
+    u = levels[rng.integers(0, levels.size, n // 5 + 1)].repeat(5)[:n]
+    return record_from_arrays("constructs", t, {"u": u}, {"zo": np.zeros(n)})
+
+
+def static_record(n: int = 25):
+    t = np.arange(n) * 2.0
+    return record_from_arrays("static", t, {"u": np.linspace(-1.0, 2.0, n)}, {"yv": np.sin(t)})
 
 
 def assert_agree(actual: np.ndarray, desired: np.ndarray, rtol: float, what: str = "") -> None:
