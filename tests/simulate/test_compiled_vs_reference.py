@@ -141,11 +141,11 @@ def test_shapes_and_uncompared_observations():
 
 
 def test_failed_set_is_flagged_and_others_unaffected():
-    """A set that blows up (negative time constant: growth to overflow) is flagged and NaN;
-    the reference flags the same set, and the other sets are as if simulated alone."""
+    """A set whose rate is not finite (a zero time constant) is flagged and NaN; the reference
+    flags the same set, and the other sets are as if simulated alone."""
     spec, record = M.lag_spec("0.0"), M.lag_record()
     tl = plan(spec, record)
-    theta = np.array([[2.0, 5.0], [2.0, -0.01], [1.0, 2.0]])
+    theta = np.array([[2.0, 5.0], [2.0, 0.0], [1.0, 2.0]])
     cm = compile_model(spec)
     for sens in (False, True):
         got = cm.simulate(tl, theta, sens=sens)
