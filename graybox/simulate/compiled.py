@@ -353,6 +353,9 @@ def fast_explicit_source(spec: ModelSpec) -> str:
         *_indent("\n".join(pick).split("\n"), 1),
         "    if mode == 0:",
         "        out_y[iset, obs_col[e]] = gr",
+        "        if not np.isfinite(gr):  # every stored observation is a compared one",
+        "            good = False",
+        "            break",
         "    else:",
         "        res = y_obs[obs_col[e]] - gr",
         "        if not np.isfinite(res):",
@@ -644,6 +647,9 @@ def _generic_observe_lines() -> list[str]:
         "        r = obs_r[e]",
         "        c0 = obs_col[e]",
         "        out_y[iset, c0] = G[r]",
+        "        if not np.isfinite(G[r]):  # every stored observation is a compared one",
+        "            good = False",
+        "            break",
         "        if sens:",
         "            for c in range(n_c):",
         "                acc = 0.0",
@@ -991,11 +997,7 @@ class CompiledModel:
         out_y = np.full((n_sets, tab.n_cols), np.nan)
         out_s = np.full((n_sets, tab.n_cols, n_c), np.nan) if sens else np.zeros((0, 0, 0))
         run = self._run(timeline, tab, theta, x0_est, sens, tol, MODE_STORE, out_y, out_s, None, None, None, None)
-        ok = run.ok
-        out_y[~ok] = np.nan
-        for o in self.spec.output_names:
-            cols = tab.offsets[o] + np.flatnonzero(timeline.used[o])
-            ok &= np.all(np.isfinite(out_y[:, cols]), axis=1)
+        ok = run.ok  # (the kernel fails a set at a non-finite output: all outputs are compared ones)
         out_y[~ok] = np.nan
         outputs = {o: out_y[:, tab.offsets[o]:tab.offsets[o] + tab.sizes[o]] for o in self.spec.output_names}
         sens_out = None

@@ -269,3 +269,16 @@ def test_implicit_method_stops_at_an_empty_tank():
     assert got.ok.tolist() == ref.ok.tolist() == [False]
     explicit = compile_model(spec).simulate(tl, theta, x0_est=x0)
     assert explicit.methods == ["explicit"] and explicit.ok.all()
+
+
+def test_non_finite_output_flags_the_set():
+    """An output that is not finite at a compared observation fails its set, in both engines,
+    and only that set."""
+    spec, record = M.static_spec(), M.static_record()
+    tl = plan(spec, record)
+    theta = np.array([[1.5, -0.3], [np.inf, 0.0], [0.2, 0.1]])
+    for sens in (False, True):
+        got = compile_model(spec).simulate(tl, theta, sens=sens)
+        ref = simulate_reference(generate(spec), tl, theta, sens=sens)
+        assert got.ok.tolist() == ref.ok.tolist() == [True, False, True]
+        M.assert_agree(got.outputs["yv"], ref.outputs["yv"], RTOL, "outputs")
