@@ -196,10 +196,10 @@ def simulate(funcs, timeline: Timeline, theta: np.ndarray, *, x0_est: np.ndarray
                                                timeline.linear)
             n_steps += steps
             ok &= seg_ok
-    for o in outputs:
+    for o in outputs:  # a non-finite compared output fails its set ...
+        ok &= np.all(np.isfinite(outputs[o][:, timeline.used[o]]), axis=1)
+    for o in outputs:  # ... and every output of a failed set is NaN (all outputs, after all checks)
         outputs[o][~ok] = np.nan
-        bad = ~np.all(np.isfinite(outputs[o][:, timeline.used[o]]), axis=1)
-        ok &= ~bad
         if sens_out is not None:
             sens_out[o][~ok] = np.nan
     return SimResult(outputs, sens_out, ok, methods, n_steps, messages)
