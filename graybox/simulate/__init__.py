@@ -26,6 +26,11 @@ class Engine:
         self.funcs = generate(spec)
         self.compiled = None
         self.note = ""
+        if engine == "auto" and spec.is_static:
+            # no states to integrate: the vectorised numpy outputs are as fast as compiled code
+            # would be, without the compile time
+            engine = "reference"
+            self.note = "static model (no states): outputs evaluated by the vectorised reference path"
         if engine in ("auto", "compiled"):
             try:
                 from graybox.simulate import compiled as _compiled
