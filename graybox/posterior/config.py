@@ -13,8 +13,8 @@
     tau_factor = 50         # chain length must exceed this many autocorrelation times
     band_draws = 400        # posterior draws behind the credible and prediction bands
     progress = "auto"       # progress bar: "auto" (when stderr is a terminal), true, false
-    moves = "differential"  # proposal: "differential" (differential evolution 0.8 + snooker 0.2)
-                            # or "stretch" (the affine-invariant stretch move)
+    moves = "differential"  # proposal: "differential" (differential evolution) or "stretch"
+                            # (the affine-invariant stretch move)
 """
 
 from __future__ import annotations
