@@ -160,7 +160,8 @@ def test_outliers_are_flagged_and_student_t_samples_nu():
 @pytest.mark.slow
 def test_estimated_initial_state_is_sampled():
     """First-order model dy/dt = (K u - y) / tau with y(0) estimated: the initial state is a
-    sampled quantity and its interval covers the value the data were made with."""
+    sampled quantity; every posterior lies within 4 sd of the values the data were made with
+    (exact solution under held inputs), with the spread of the least-squares intervals."""
     spec = spec_of({"states": {"y": {"units": "", "rate": "(K*u - y)/tau", "initial": "estimate",
                                      "initial_bounds": [-5.0, 5.0]}}, "inputs": {"u": ""}},
                    {"K": {"guess": 1.5, "bounds": [0.1, 10.0]},
@@ -180,8 +181,10 @@ def test_estimated_initial_state_is_sampled():
     assert post.names == ["K", "tau", "y0[main]"]
     assert post.converged, post.reason
     for name, truth in (("K", 2.0), ("tau", 5.0), ("y0[main]", 0.5)):
-        lo, hi = post.stats[name]["ci95"]
-        assert lo < truth < hi, (name, lo, hi)
+        st = post.stats[name]
+        assert abs(st["median"] - truth) < 4 * st["sd"], (name, st)
+        # a nearly linear model: the posterior spread is the least-squares one
+        assert st["sd"] == pytest.approx(res.parameters[name].stderr, rel=0.25), (name, st)
 
 
 def test_errors_before_sampling(sampled):
