@@ -140,7 +140,8 @@ def main(argv=None) -> int:
     ap.add_argument("--max-steps", type=int, default=0, help="cap the graybox run (0: to convergence or 20000)")
     ap.add_argument("--demo", action="store_true", help="also time the demo study's sampling stage")
     args = ap.parse_args(argv)
-    print(f"cores available: {len(os.sched_getaffinity(0))}; python {sys.version.split()[0]}; emcee {emcee.__version__}")
+    cores = len(os.sched_getaffinity(0))
+    print(f"cores available: {cores}; python {sys.version.split()[0]}; emcee {emcee.__version__}")
     r = run_vessel(args)
     post = r["post"]
     print(f"heated vessel, {args.samples} samples, engine {r['engine']}: least squares {r['fit_s']:.1f} s")
@@ -152,7 +153,8 @@ def main(argv=None) -> int:
     print(f"speed-up (per step, same walkers, same run): {r['baseline_per_step_s'] / r['graybox_per_step_s']:.0f}x")
     for name in post.names:
         s = post.stats[name]
-        print(f"  {name}: median {s['median']:.6g}, 95% [{s['ci95'][0]:.6g}, {s['ci95'][1]:.6g}], ESS {s['ess'] or 0:.0f}")
+        lo, hi = s["ci95"]
+        print(f"  {name}: median {s['median']:.6g}, 95% [{lo:.6g}, {hi:.6g}], ESS {s['ess'] or 0:.0f}")
     if args.demo:
         d = run_demo(args)
         p = d["post"]

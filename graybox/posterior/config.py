@@ -27,7 +27,8 @@ import numpy as np
 
 from graybox.configkit import Table
 from graybox.errors import ConfigError, SampleError
-from graybox.posterior.priors import KIND_FLAT, KIND_LOGNORMAL, KIND_NORMAL, KIND_UNIFORM, PRIOR_KEYS, PRIOR_KINDS, Prior
+from graybox.posterior.priors import (KIND_FLAT, KIND_LOGNORMAL, KIND_NORMAL, KIND_UNIFORM, PRIOR_KEYS,
+                                      PRIOR_KINDS, Prior)
 
 SAMPLING_KEYS = ("enabled", "walkers", "max_steps", "check_every", "seed", "min_ess", "rhat_max", "tau_factor",
                  "band_draws", "progress", "moves")

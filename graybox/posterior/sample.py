@@ -557,7 +557,8 @@ def run_posterior(problem: Problem, fit_result: FitResult, noise: dict, settings
     natural_noise = {}
     for m in layout.models:
         s, ph, nu = layout.values(post.sampled(med[None, :])[:, post.n_free:], m.output)
-        natural_noise[m.output] = (float(s[0]), None if ph is None else float(ph[0]), None if nu is None else float(nu[0]))
+        natural_noise[m.output] = (float(s[0]), None if ph is None else float(ph[0]),
+                                   None if nu is None else float(nu[0]))
     warnings = residual_checks(layout, post.residuals(med[: post.n_free]), natural_noise, problem.spec.output_names)
     if not converged:
         warnings.insert(0, "the sampler stopped at its step limit before converging: the posterior summaries are "
