@@ -21,6 +21,7 @@ import importlib.util
 import os
 import sys
 import tempfile
+from contextlib import contextmanager
 from pathlib import Path
 from types import ModuleType
 
@@ -82,6 +83,25 @@ def _publish(tmp: str, path: Path) -> None:
     except OSError:
         if not path.exists():
             os.replace(tmp, path)
+
+
+@contextmanager
+def exclusive(path: Path):
+    """Hold an exclusive advisory lock on ``path`` (created if missing) while inside: the
+    first process compiles a kernel, the others wait and then load its machine code from
+    numba's cache instead of compiling it too.  Without ``fcntl`` (Windows) no lock is taken:
+    racing processes then compile twice, which is only slower."""
+    try:
+        import fcntl
+    except ImportError:  # pragma: no cover - not POSIX
+        yield
+        return
+    with open(path, "a+") as fh:
+        fcntl.flock(fh.fileno(), fcntl.LOCK_EX)
+        try:
+            yield
+        finally:
+            fcntl.flock(fh.fileno(), fcntl.LOCK_UN)
 
 
 def import_file(path: Path, name: str) -> ModuleType:

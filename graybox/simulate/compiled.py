@@ -35,6 +35,7 @@ import math
 import threading
 import weakref
 from dataclasses import dataclass
+from pathlib import Path
 from functools import lru_cache
 from types import ModuleType
 from typing import Mapping
@@ -64,6 +65,7 @@ JIT_NO_ALLOC = JIT_OPTIONS + ", _nrt=False"
 ARGS = ("x", "u", "p", "out")
 MODE_STORE, MODE_SSE = 0, 1
 PYTHON_RHS_NOTE = "the model's right-hand side is a Python function: reference path used"
+_WARM: dict[str, set[str]] = {}  # generated module -> entry kernels already called in this process
 
 # ---------------------------------------------------------------------------------------------
 # Code generation (from validated trees only)
@@ -1154,20 +1156,36 @@ class CompiledModel:
                     tab.y_obs, w, ar is not None, phi, dt_ref, sse, ssa)
             retry = np.zeros(n_sets, bool)
             kernel = self.kernel_for(method, sens, bool(tab.lin.any()))
-            kernel(st.t, st.u, tab.lin, theta, x0, S0, run.ok, run.steps, retry, bool(sens), *args)
+            self._invoke(kernel, st.t, st.u, tab.lin, theta, x0, S0, run.ok, run.steps, retry, bool(sens), *args)
             if retry.any():  # sets the fast path handed back: the general explicit path
                 again = retry.copy()
-                self.module.run_dopri(st.t, st.u, tab.lin, theta, x0, S0, again, run.steps, retry, bool(sens), *args)
+                self._invoke("run_dopri", st.t, st.u, tab.lin, theta, x0, S0, again, run.steps, retry, bool(sens),
+                             *args)
                 run.ok[retry] = again[retry]
         return run
 
-    def kernel_for(self, method: str, sens: bool, any_linear: bool):
-        """The entry kernel for a segment: the scalar fast path when it applies."""
+    def kernel_for(self, method: str, sens: bool, any_linear: bool) -> str:
+        """The name of the entry kernel for a segment: the scalar fast path when it applies."""
         if method == IMPLICIT:
-            return self.module.run_rodas
+            return "run_rodas"
         if self.fast_path and method == EXPLICIT and not sens and not any_linear and not self.spec.is_static:
-            return self.module.run_fast
-        return self.module.run_dopri
+            return "run_fast"
+        return "run_dopri"
+
+    def _invoke(self, name: str, *args) -> None:
+        """Call an entry kernel.  Its first call in this process (which compiles it, or loads
+        it from numba's cache) holds a lock file beside the module, so that processes starting
+        the same model together compile it once."""
+        kernel = getattr(self.module, name)
+        warm = _WARM.setdefault(self.module.__name__, set())
+        if name in warm:
+            kernel(*args)
+            return
+        from graybox.simulate.cache import exclusive
+
+        with exclusive(Path(self.module.__file__).with_suffix(f".{name}.lock")):
+            kernel(*args)
+        warm.add(name)
 
 
 # ---------------------------------------------------------------------------------------------
