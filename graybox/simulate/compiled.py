@@ -908,6 +908,7 @@ class TimelineTables:
     y_obs: np.ndarray  # (n_cols,) observed values (compared ones are finite)
     segments: tuple[SegmentTable, ...]
     lin: np.ndarray  # (n_u,) bool
+    n_used: np.ndarray  # (n_outputs,) compared observations per output
 
 
 def segment_table(seg: SegmentPlan, output_names: list[str], offsets: Mapping[str, int]) -> SegmentTable:
@@ -944,7 +945,8 @@ def timeline_tables(spec: ModelSpec, timeline: Timeline) -> TimelineTables:
     y_obs = np.concatenate([np.asarray(rec.outputs[o].values, float) for o in names]) if names else np.zeros(0)
     segs = tuple(segment_table(seg, names, offsets) for seg in timeline.segments)
     lin = _own(np.asarray(timeline.linear, bool).reshape(len(spec.inputs)), bool)
-    return TimelineTables(offsets, sizes, at, y_obs, segs, lin)
+    n_used = np.array([timeline.n_obs_of(o) for o in names], dtype=np.int64)
+    return TimelineTables(offsets, sizes, at, y_obs, segs, lin, n_used)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -1119,7 +1121,7 @@ class CompiledModel:
         return np.array(out)
 
     def _n_used(self, timeline: Timeline) -> np.ndarray:
-        return np.array([timeline.n_obs_of(o) for o in self.spec.output_names], dtype=np.int64)
+        return self.tables(timeline).n_used.copy()
 
     def _start(self, b: Batch, seg: SegmentPlan, st: SegmentTable, timeline: Timeline, x0_est, sens: bool,
                tol: Tolerances):
