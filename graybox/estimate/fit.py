@@ -229,7 +229,10 @@ def _evaluate(problem: Problem, x: np.ndarray, sigmas: np.ndarray) -> _Point | N
         return None
     scale = np.linalg.norm(J, axis=0)
     scale[scale == 0] = 1.0
-    U, s, Vt = np.linalg.svd(J / scale, full_matrices=False)
+    try:
+        U, s, Vt = np.linalg.svd(J / scale, full_matrices=False)
+    except np.linalg.LinAlgError:
+        return None
     keep = s > s.max(initial=0.0) * max(J.shape) * EPS
     ur = U[:, keep].T @ r
     norm_r = float(np.linalg.norm(r))
@@ -350,7 +353,10 @@ def covariance_from_jacobian(J: np.ndarray) -> tuple[np.ndarray, int, float]:
     n = J.shape[1]
     scale = np.linalg.norm(J, axis=0)
     scale[scale == 0] = 1.0
-    U, s, Vt = np.linalg.svd(J / scale, full_matrices=False)
+    try:
+        U, s, Vt = np.linalg.svd(J / scale, full_matrices=False)
+    except np.linalg.LinAlgError:  # e.g. noise-free data: weights blow up, no covariance
+        return np.full((n, n), np.nan), 0, np.inf
     tol = s.max(initial=0.0) * max(J.shape) * np.finfo(float).eps
     rank = int(np.sum(s > tol))
     cond = float(s[0] / s[-1]) if s.size and s[-1] > 0 else np.inf
