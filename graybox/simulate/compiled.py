@@ -35,8 +35,8 @@ import math
 import threading
 import weakref
 from dataclasses import dataclass
-from pathlib import Path
 from functools import lru_cache
+from pathlib import Path
 from types import ModuleType
 from typing import Mapping
 
