@@ -526,6 +526,47 @@ def gradient(node: Node, variables: Iterable[str]) -> list[Node]:
     return out
 
 
+def is_affine(node: Node, variables: Iterable[str]) -> bool:
+    """True when ``node`` is structurally affine in ``variables``: built from them by sums,
+    differences, negation, products with a factor free of them and quotients by a
+    denominator free of them.  Conservative: a variable inside a function, a power, a
+    comparison or a conditional makes it not affine (even where the result happens to be)."""
+    var = set(variables)
+
+    def free(n: Node) -> bool:
+        return not (symbols(n) & var)
+
+    def affine(n: Node) -> bool:
+        if free(n) or isinstance(n, Sym):
+            return True
+        if isinstance(n, Neg):
+            return affine(n.arg)
+        if isinstance(n, BinOp):
+            if n.op in ("+", "-"):
+                return affine(n.left) and affine(n.right)
+            if n.op == "*":
+                return (free(n.left) and affine(n.right)) or (free(n.right) and affine(n.left))
+            if n.op == "/":
+                return free(n.right) and affine(n.left)
+        return False
+
+    return affine(node)
+
+
+def affine_parts(node: Node, variables: Iterable[str]) -> tuple[Node, list[Node]]:
+    """For an affine ``node`` (see :func:`is_affine`): the value at zero and the coefficient
+    of each variable, all free of the variables, so ``node == c0 + sum(c_j * v_j)`` exactly
+    in real arithmetic."""
+    names = list(variables)
+    if not is_affine(node, names):
+        raise ValueError("not affine in the given variables")
+    c0 = substitute(node, {v: ZERO for v in names})
+    coefs = gradient(node, names)
+    if any(symbols(c) & set(names) for c in [c0, *coefs]):  # pragma: no cover - structural guarantee
+        raise AssertionError("affine decomposition left a variable behind")
+    return c0, coefs
+
+
 def walk(node: Node) -> Iterable[Node]:
     """All nodes, parents before children."""
     stack = [node]

@@ -112,3 +112,42 @@ def test_to_text_round_trips():
     for text in EXPRESSIONS:
         node = parse(text)
         assert parse(to_text(node)) == node
+
+
+AFFINE = [  # (text, variables, structurally affine?)
+    ("(F*cp*(T_in - T) + Q - UA*(T - T_amb))/(M*cp)", ("T",), True),
+    ("(UA*(T - Tw) - UB*(Tw - T_amb))/C", ("T", "Tw"), True),
+    ("-(x - a)/(b + c) + 3*x - x/4", ("x",), True),
+    ("exp(-E/T_ref)*(x - a) + max(a, b)*x", ("x",), True),
+    ("a*x**2 + b*x + c", ("x",), False),
+    ("sqrt(abs(h))*cv", ("h",), False),
+    ("x*T", ("x", "T"), False),
+    ("a/x", ("x",), False),
+    ("where(x > a, 1.0, 0.0)", ("x",), False),  # zero derivative, yet a jump: not affine
+    ("(a if x > b else c*x)", ("x",), False),
+]
+
+
+@pytest.mark.parametrize("text,variables,expected", AFFINE)
+def test_affine_decomposition_matches_sympy(text, variables, expected):
+    """is_affine and affine_parts against sympy (reference library): for affine trees,
+    c0 + sum(c_j v_j) - expr simplifies to zero and each c_j equals sympy's derivative."""
+    from graybox.model.expr import affine_parts, is_affine
+
+    node = parse(text)
+    assert is_affine(node, variables) is expected
+    if not expected:
+        with pytest.raises(ValueError):
+            affine_parts(node, variables)
+        return
+    c0, coefs = affine_parts(node, variables)
+    names = sorted(symbols(node))
+    syms = {n: sympy.Symbol(n, real=True) for n in names}
+    loc = {**syms, "max": sympy.Max}
+    ref = sympy.sympify(text, locals=loc)
+    ours = sympy.sympify(to_text(c0), locals=loc) + sum(
+        sympy.sympify(to_text(c), locals=loc) * syms[v] for c, v in zip(coefs, variables))
+    assert sympy.simplify(ours - ref) == 0
+    for c, v in zip(coefs, variables):
+        assert not (symbols(c) & set(variables))
+        assert sympy.simplify(sympy.sympify(to_text(c), locals=loc) - sympy.diff(ref, syms[v])) == 0

@@ -50,6 +50,20 @@ CONSTRUCTS = {"states": {"z": {"units": "", "rate": CONSTRUCTS_RATE, "initial": 
               "outputs": {"zo": {"expr": "z + c*where(u > 1 or z < -5, sqrt(abs(z)), -tanh(z))"}}}
 CONSTRUCTS_P = {"a": {"guess": 0.1, "units": "1/s"}, "b": {"guess": 1.0, "units": "1/s"}, "c": {"guess": 0.5}}
 
+# A hot-water store and its steel wall: two states, both rates affine in the states (the
+# compiled fast path evaluates them as c0 + C x with the coefficients once per interval).
+WALL = {
+    "states": {
+        "T": {"units": "K", "rate": "(F*cp*(T_in - T) - UA_i*(T - T_w))/(M*cp)", "initial": "estimate"},
+        "T_w": {"units": "K", "rate": "(UA_i*(T - T_w) - UA_o*(T_w - T_amb))/C_w", "initial": "steady"},
+    },
+    "inputs": {"F": "kg/s", "T_in": "K", "T_amb": "K"},
+    "outputs": {"T_store": {"expr": "T", "units": "K"}},
+    "constants": {"M": {"value": 800.0, "units": "kg"}, "cp": {"value": 4186.0, "units": "J/(kg*K)"}},
+}
+WALL_P = {"UA_i": {"guess": 900.0, "units": "W/K"}, "UA_o": {"guess": 40.0, "units": "W/K"},
+          "C_w": {"guess": 2.0e5, "units": "J/K"}}
+
 STATIC = {"inputs": {"u": ""}, "outputs": {"yv": {"expr": "a*u + b*u**2"}}}
 STATIC_P = {"a": {"guess": 1.5}, "b": {"guess": -0.3}}
 
@@ -80,6 +94,11 @@ def reactor_spec():
 @lru_cache(maxsize=None)
 def constructs_spec():
     return build(CONSTRUCTS, CONSTRUCTS_P)
+
+
+@lru_cache(maxsize=None)
+def wall_spec():
+    return build(WALL, WALL_P)
 
 
 @lru_cache(maxsize=None)
@@ -120,6 +139,16 @@ def constructs_record(n: int = 81, seed: int = 3):
     levels = np.array([0.2, 0.3, 0.6, 1.0, 1.5, 2.5])
     u = levels[rng.integers(0, levels.size, n // 5 + 1)].repeat(5)[:n]
     return record_from_arrays("constructs", t, {"u": u}, {"zo": np.zeros(n)})
+
+
+def wall_record(n: int = 181, dt: float = 30.0, seed: int = 6):
+    t = np.arange(n) * dt
+    rng = np.random.default_rng(seed)
+    flow = 0.05 * steps(t, 900.0, 0.0, 1.0) + 0.002 * rng.standard_normal(n).clip(-1, 1)
+    t_in = 288.0 + 2.0 * np.sin(t / 2000.0)
+    t_amb = 278.0 + 4.0 * np.sin(t / 3000.0)
+    return record_from_arrays("wall", t, {"F": flow, "T_in": t_in, "T_amb": t_amb}, {"T_store": np.full(n, 330.0)},
+                              units={"F": "kg/s", "T_in": "K", "T_amb": "K", "T_store": "K"})
 
 
 def static_record(n: int = 25):

@@ -115,6 +115,34 @@ def test_tank_with_inflow():
     check(runs, expected, tl.used["h"], "h")
 
 
+def wall_rhs(x, u, p):
+    ua_i, ua_o, c_w = p
+    temp, wall = x
+    flow, t_in, t_amb = u
+    m_cp = 800.0 * 4186.0
+    return np.array([(flow * 4186.0 * (t_in - temp) - ua_i * (temp - wall)) / m_cp,
+                     (ua_i * (temp - wall) - ua_o * (wall - t_amb)) / c_w])
+
+
+def wall_jac(x, u, p):
+    ua_i, ua_o, c_w = p
+    m_cp = 800.0 * 4186.0
+    return np.array([[-(u[0] * 4186.0 + ua_i) / m_cp, ua_i / m_cp], [ua_i / c_w, -(ua_i + ua_o) / c_w]])
+
+
+def test_two_state_affine_wall():
+    """Store and wall (rates affine in the states: the compiled c0 + C x form), wall starting
+    at its steady state (solved here in closed form from the wall balance)."""
+    spec, rec = M.wall_spec(), M.wall_record()
+    tl = plan(spec, rec)
+    p = (900.0, 40.0, 2.0e5)
+    runs = engines(spec, tl, np.array([p]), np.array([[330.0]]), Tolerances())
+    u = inputs(rec, ["F", "T_in", "T_amb"])
+    wall0 = (p[0] * 330.0 + p[1] * u[0, 2]) / (p[0] + p[1])
+    expected = piecewise(wall_rhs, rec.inputs["F"].t, u, [330.0, wall0], p, jac=wall_jac)[:, 0]
+    check(runs, expected, tl.used["T_store"], "T_store")
+
+
 REACTOR_THETA = (1.6e8, 5000.0, 20.0, 10.0, 5.0)
 
 

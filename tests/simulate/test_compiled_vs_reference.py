@@ -55,7 +55,12 @@ def _constructs():
         np.array([[0.2], [-0.3]])
 
 
-CASES = {"lag_estimated": _lag_est, "lag_linear_hold": _lag_linear, "lag_measured": _lag_measured,
+def _wall():
+    return M.wall_spec(), M.wall_record(), np.array([[900.0, 40.0, 2.0e5], [300.0, 80.0, 5.0e4]]), \
+        np.array([[330.0], [345.0]])
+
+
+CASES = {"wall_affine": _wall, "lag_estimated": _lag_est, "lag_linear_hold": _lag_linear, "lag_measured": _lag_measured,
          "tank": _tank, "reactor_steady": _reactor, "static": _static, "constructs": _constructs}
 
 
@@ -95,7 +100,7 @@ def test_agrees_with_reference(case, sens):
 # chaotic: numpy's vectorised exp differs from the C library's in the last bit for a few
 # percent of arguments, and such differences grow there to the size of the tolerance.  That
 # case is checked for accuracy against solve_ivp, not for last-digit agreement.)
-@pytest.mark.parametrize("case", ["lag_estimated", "lag_linear_hold", "tank", "constructs"])
+@pytest.mark.parametrize("case", ["wall_affine", "lag_estimated", "lag_linear_hold", "tank", "constructs"])
 @pytest.mark.parametrize("method", ["explicit", "implicit"])
 @pytest.mark.parametrize("sens", [False, True])
 def test_agrees_with_reference_either_method(case, method, sens):
@@ -104,7 +109,7 @@ def test_agrees_with_reference_either_method(case, method, sens):
     _check_against_reference(spec, record, theta, x0, sens=sens, method=method, fast_path=True)
 
 
-@pytest.mark.parametrize("case", ["lag_estimated", "tank", "constructs"])
+@pytest.mark.parametrize("case", ["wall_affine", "lag_estimated", "tank", "constructs"])
 def test_general_path_equals_reference_steps(case):
     """The general explicit kernel (fast path off) also agrees with the reference."""
     spec, record, theta, x0 = CASES[case]()
