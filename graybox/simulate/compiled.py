@@ -78,6 +78,7 @@ JIT_NO_ALLOC = JIT_OPTIONS + ", _nrt=False"
 ARGS = ("x", "u", "p", "out")
 MODE_STORE, MODE_SSE = 0, 1
 PYTHON_RHS_NOTE = "the model's right-hand side is a Python function: reference path used"
+_EMPTY2, _EMPTY3 = np.zeros((0, 0)), np.zeros((0, 0, 0))  # placeholders for unused kernel arguments
 _WARM: dict[str, set[str]] = {}  # generated module -> entry kernels already called in this process
 
 # ---------------------------------------------------------------------------------------------
@@ -1030,6 +1031,7 @@ class CompiledModel:
         self.digest = spec_digest(spec)
         self._tables: dict[int, tuple[weakref.ref, TimelineTables]] = {}
         self._lock = threading.Lock()
+        self._ones = np.ones(len(spec.outputs))  # default weights, phi and dt_ref
 
     # -- public ------------------------------------------------------------------------------
     def simulate(self, timeline: Timeline, theta, *, x0_est=None, sens: bool = False,
@@ -1173,14 +1175,14 @@ class CompiledModel:
         n_c = n_columns(self.funcs, timeline) if sens else 0
         b = Batch(self.funcs, theta.T.copy(), n_c)
         run = _Run(np.ones(n_sets, bool), np.zeros(n_sets, np.int64), [], [])
-        empty2, empty3 = np.zeros((0, 0)), np.zeros((0, 0, 0))
-        n_y = len(self.spec.outputs)
-        w = np.ones(n_y) if w is None else w
+        empty2, empty3, ones = _EMPTY2, _EMPTY3, self._ones  # read-only in the kernels
+        w = ones if w is None else w
         sse = empty2 if sse is None else sse
         ssa = empty2 if ssa is None else ssa
-        phi, dt_ref = (np.ones(n_y), np.ones(n_y)) if ar is None else ar
+        phi, dt_ref = (ones, ones) if ar is None else ar
         out_y = empty2 if out_y is None else out_y
         out_s = empty3 if out_s is None else out_s
+        any_linear = bool(tab.lin.any())
         for seg, st in zip(timeline.segments, tab.segments):
             x0, S0, ok0, method = self._start(b, seg, st, timeline, x0_est, sens, tol)
             if not ok0.all():
@@ -1190,7 +1192,7 @@ class CompiledModel:
             args = (float(tol.rtol), float(tol.atol), st.knot_ptr, st.obs_r, st.obs_col, mode, out_y, out_s,
                     tab.y_obs, w, ar is not None, phi, dt_ref, sse, ssa)
             retry = np.zeros(n_sets, bool)
-            kernel = self.kernel_for(method, sens, bool(tab.lin.any()))
+            kernel = self.kernel_for(method, sens, any_linear)
             self._invoke(kernel, st.t, st.u, tab.lin, theta, x0, S0, run.ok, run.steps, retry, bool(sens), *args)
             if retry.any():  # sets the fast path handed back: the general explicit path
                 again = retry.copy()
