@@ -176,6 +176,18 @@ class Problem:
         sse[~ok] = np.inf
         return sse, ok
 
+    def sse_by_experiment(self, X: np.ndarray) -> tuple[list[np.ndarray], np.ndarray]:
+        """Per experiment the unweighted SSE per output (n_sets, n_outputs), from the engine's
+        SSE mode (no trajectories kept), and ok flags over all experiments."""
+        X = np.atleast_2d(X)
+        out, ok = [], np.ones(X.shape[0], bool)
+        for e, ex in enumerate(self.experiments):
+            theta, x0 = self.model_arguments(X, e)
+            sse, ok_e = self.engine.sse(ex.timeline, theta, x0_est=x0)
+            out.append(sse)
+            ok &= ok_e
+        return out, ok
+
     def residuals(self, x: np.ndarray, sigmas: np.ndarray) -> np.ndarray:
         """Weighted residuals for one free vector (NaN-free; +inf-free): 1-D array."""
         preds, ok = self.predictions(np.atleast_2d(x))

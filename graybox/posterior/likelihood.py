@@ -14,7 +14,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from graybox.estimate.problem import Problem
-from graybox.posterior.noise import NoiseLayout
+from graybox.posterior.noise import KIND_GAUSSIAN, NoiseLayout
 from graybox.posterior.priors import KIND_FLAT, KIND_UNIFORM, Prior
 
 
@@ -39,6 +39,7 @@ class LogPosterior:
         self._log_free = np.array([p.log_scale for p in self.priors], bool)
         self._shaped = [j for j, p in enumerate(self.priors) if p.kind not in (KIND_UNIFORM, KIND_FLAT)]
         self._log_noise = np.array([p.what != "phi" for p in self.layout.params], bool)
+        self._sums_suffice = all(m.kind == KIND_GAUSSIAN for m in self.layout.models)
         self._nu_cols = [self.n_free + k for k, p in enumerate(self.layout.params) if p.what == "log_nu"]
 
     @property
@@ -96,10 +97,14 @@ class LogPosterior:
         return lp
 
     def log_likelihood(self, Z: np.ndarray) -> np.ndarray:
-        """Log-likelihood of rows Z (all assumed inside the support)."""
+        """Log-likelihood of rows Z (all assumed inside the support).  With Gaussian noise on
+        every output it needs only the sums of squares (the engine's SSE mode: no
+        trajectory is kept); AR(1) and Student-t errors need the residuals themselves."""
         Z = np.atleast_2d(Z)
         X = self.free_values(Z)
         N = Z[:, self.n_free:]
+        if self._sums_suffice:
+            return self._gaussian_from_sums(X, N)
         preds, ok = self.problem.predictions(X)
         ll = np.zeros(Z.shape[0])
         with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
@@ -107,6 +112,18 @@ class LogPosterior:
                 for o in self.problem.spec.output_names:
                     R = self._observed[e][o][None, :] - pred[o]
                     ll = ll + self.layout.loglik(o, e, R, N)
+        return np.where(ok & np.isfinite(ll), ll, -np.inf)
+
+    def _gaussian_from_sums(self, X: np.ndarray, N: np.ndarray) -> np.ndarray:
+        """sum over experiments and outputs of -n/2 log(2 pi sigma^2) - SSE / (2 sigma^2)."""
+        sums, ok = self.problem.sse_by_experiment(X)
+        ll = np.zeros(X.shape[0])
+        with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
+            for r, o in enumerate(self.problem.spec.output_names):
+                sigma, _, _ = self.layout.values(N, o)
+                for e, sse in enumerate(sums):
+                    n = self._observed[e][o].size
+                    ll = ll - 0.5 * n * np.log(2 * np.pi * sigma**2) - 0.5 * sse[:, r] / sigma**2
         return np.where(ok & np.isfinite(ll), ll, -np.inf)
 
     def __call__(self, Z: np.ndarray) -> np.ndarray:

@@ -53,6 +53,25 @@ class Engine:
         return simulate_reference(self.funcs, timeline, theta, x0_est=x0_est, sens=sens, tol=self.tol)
 
 
+    def sse(self, timeline: Timeline, theta, *, x0_est=None):
+        """Per set and output the sum of squared residuals (observed - simulated) over the
+        compared observations, and ok flags: the compiled core keeps no trajectory for it;
+        the reference path simulates and sums."""
+        import numpy as np
+
+        if self.compiled is not None:
+            sse, _, ok = self.compiled.sse(timeline, theta, x0_est=x0_est, tol=self.tol)
+            return sse, ok
+        res = self.simulate(timeline, theta, x0_est=x0_est)
+        sse = np.zeros((res.ok.size, len(self.spec.outputs)))
+        for r, o in enumerate(self.spec.output_names):
+            used = timeline.used[o]
+            observed = timeline.record.outputs[o].values[used]
+            sse[:, r] = np.sum((observed[None, :] - res.outputs[o][:, used]) ** 2, axis=1)
+        sse[~res.ok] = np.nan
+        return sse, res.ok
+
+
 def finite_difference_sensitivities(funcs, timeline: Timeline, theta, x0_est, tol: Tolerances) -> SimResult:
     """Sensitivities of a Python right-hand side: central differences, every perturbed set in
     the same batch as the nominal one, so they share one step sequence (differences of
