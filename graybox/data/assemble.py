@@ -22,6 +22,7 @@ every output is dropped (and noted).
 from __future__ import annotations
 
 import difflib
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
@@ -89,12 +90,24 @@ def read_files(spec: DataSpec, vocab: QualityVocab | None = None
         wanted.setdefault(tg.tag, tg.quality_column)
     text_time = spec.time.format in ("iso", "local")
     chunks: dict[str, list[Chunk]] = {}
-    sources = []
     tables: dict[int, RawTable] = {}
+    digests = []
+    # each file is hashed on a second thread (hashlib releases the GIL) while the main one
+    # stamps and sorts its rows; started after the parse, which it would only slow down
+    with ThreadPoolExecutor(max_workers=1) as hasher:
+        _read_each(spec, vocab, wanted, text_time, chunks, tables,
+                   after_read=lambda path: digests.append(hasher.submit(file_sha256, path)))
+        sources = [{"path": str(path), "sha256": d.result()} for path, d in zip(spec.files, digests)]
+    return chunks, tuple(sources), tables
+
+
+def _read_each(spec: DataSpec, vocab: QualityVocab, wanted: dict, text_time: bool,
+               chunks: dict[str, list[Chunk]], tables: dict[int, RawTable], after_read) -> None:
+    """Read every file into ``tables`` and its stamped rows of each wanted tag into ``chunks``."""
     static_offset = 0
     for k, path in enumerate(spec.files):
-        sources.append({"path": str(path), "sha256": file_sha256(path)})
         table = read_table(path, spec.read, spec.time.column, wanted, text_time, vocab)
+        after_read(path)
         tables[k] = table
         if not table.tags:
             continue
@@ -132,7 +145,6 @@ def read_files(spec: DataSpec, vocab: QualityVocab | None = None
         for name, tr in table.tags.items():
             chunks.setdefault(name, []).append(Chunk(k, table.word, table.numbers[tr.rows], t_all[tr.rows],
                                                      gap_all[tr.rows], tr.values, tr.quality))
-    return chunks, tuple(sources), tables
 
 
 def missing_tag_error(tg: TagSpec, spec: DataSpec, tables: dict[int, RawTable]) -> DataError:
@@ -157,6 +169,9 @@ def _in_windows(t: np.ndarray, windows) -> np.ndarray:
 
 
 def _concat(chunks: list[Chunk]):
+    if len(chunks) == 1:  # one file: its arrays as they are (none is changed in place later)
+        c = chunks[0]
+        return np.full(c.values.size, c.file, np.int64), c.numbers, c.t_ns, c.nonexistent, c.values, c.quality
     cat = np.concatenate
     file_idx = cat([np.full(c.values.size, c.file, np.int64) for c in chunks])
     numbers = cat([c.numbers for c in chunks])

@@ -23,12 +23,18 @@ def _arrow(series: pd.Series, combine: bool = True):
     return arr.combine_chunks()
 
 
+def arrow_text(series: pd.Series):
+    """The column as one contiguous pyarrow string array, or None when it is not arrow text."""
+    return _arrow(series) if pd.api.types.is_string_dtype(series.dtype) else None
+
+
 def text_codes(series: pd.Series) -> tuple[np.ndarray, pd.Series]:
     """``(codes, values)``: ``values.iloc[codes]`` reproduces the column (nulls have code -1
     when hashed; callers reject or map nulls before)."""
-    arr = _arrow(series, combine=False)
+    arr = _arrow(series)
     n = len(series)
     if arr is not None and n > 2 * _PROBE and arr.null_count == 0:
+        import pyarrow as pa
         import pyarrow.compute as pc
 
         probe = arr[:_PROBE]
@@ -39,11 +45,11 @@ def text_codes(series: pd.Series) -> tuple[np.ndarray, pd.Series]:
             starts = np.flatnonzero(change)
             if starts.size <= n // 4:
                 codes = np.repeat(np.arange(starts.size, dtype=np.int64), np.diff(np.append(starts, n)))
-                return codes, series.iloc[starts].reset_index(drop=True)
+                return codes, pd.Series(arr.take(pa.array(starts)).to_pandas(), dtype=series.dtype)
     if arr is not None:
         import pyarrow.compute as pc
 
-        enc = pc.dictionary_encode(arr.combine_chunks())  # what pandas.factorize does on arrow text, minus its wrapping
+        enc = pc.dictionary_encode(arr)  # what pandas.factorize does on arrow text, minus its wrapping
         codes = enc.indices.to_numpy(zero_copy_only=False)
         codes = np.where(np.isnan(codes), -1, codes).astype(np.int64) if enc.null_count else codes.astype(np.int64)
         return codes, pd.Series(enc.dictionary.to_pandas(), dtype=series.dtype)

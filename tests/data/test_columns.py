@@ -5,6 +5,7 @@ through the wide reader."""
 import numpy as np
 import pandas as pd
 
+from graybox.data import SymbolInfo
 from graybox.data.columns import text_codes
 
 from .util import load
@@ -50,3 +51,59 @@ def test_large_long_export_sorted_by_tag_blocks(tmp_path):
     np.testing.assert_array_equal(rec_l.outputs["T"].mask, rec_w.outputs["T"].mask)
     np.testing.assert_array_equal(rec_l.outputs["T"].values, rec_w.outputs["T"].values)
     assert rep_l.tag("T").masked == rep_w.tag("T").masked == {"bad quality flag": 6}
+
+
+# -- fast paths against their general ones ---------------------------------------------------
+ISO_SPELLINGS = [
+    "2026-01-01T00:00:00+01:00", "2026-01-01 00:00:00+0100", "2026-01-01T00:00:00Z",
+    "2026-07-15T23:59:59.123456789-05:30", "2026-01-01T00:00+01:00", "2026-01-01T00:00:00+01",
+    "2026-03-29T01:30:00+00:00", "2026-10-25T02:30:00+02:00", "2026-10-25T02:30:00+01:00",
+    "2024-02-29T12:00:00.5+14:00", "2026-12-31T23:59:59.999-12:00",
+]
+
+
+def test_arrow_iso_parse_agrees_with_pandas():
+    """Reference: pandas' ISO 8601 parser (``to_datetime(format="ISO8601", utc=True)``), the
+    general path the arrow fast path must reproduce to the nanosecond."""
+    from graybox.data.timestamps import _iso_fast
+
+    text = pd.Series(ISO_SPELLINGS * 3, dtype="str")
+    ref = pd.DatetimeIndex(pd.to_datetime(text, format="ISO8601", utc=True)).as_unit("ns").asi8
+    np.testing.assert_array_equal(_iso_fast(text), ref)
+
+
+def test_arrow_iso_parse_refuses_what_it_must_leave_to_the_general_path():
+    from graybox.data.timestamps import _iso_fast
+
+    # no offset (never a guessed zone), a decimal comma, surrounding blanks, not a date
+    for bad in ("2026-01-01T00:00:00", "2026-01-01T00:00:00,5+01:00", " 2026-01-01T00:00:00Z ", "soon"):
+        assert _iso_fast(pd.Series(ISO_SPELLINGS + [bad], dtype="str")) is None
+
+
+def test_iso_stamps_with_comma_and_blanks_still_load(tmp_path):
+    """Stamps the fast path refuses go through the general one and give the same instants."""
+    rows = ["time,T"] + [f'" 2026-01-01T00:00:{s:02d},5+01:00 ",{20 + s}' for s in range(5)]
+    (tmp_path / "c.csv").write_text("\n".join(rows) + "\n")
+    rec, _ = load(tmp_path, {"files": ["c.csv"], "time_column": "time", "tags": {"T": "T"}},
+                  symbols={"T": SymbolInfo("T", "output", "K")})
+    np.testing.assert_allclose(rec.outputs["T"].t, np.arange(5.0))
+    assert rec.start_utc.isoformat() == "2025-12-31T23:00:00.500000+00:00"
+
+
+def test_tag_lookup_fast_path_matches_the_general_coding():
+    """When every row holds a wanted tag they are looked up in the wanted list; otherwise
+    every distinct text is coded.  Both must give the same rows per tag name."""
+    from graybox.data.readers import _tag_codes
+
+    rng = np.random.default_rng(3)
+    col = pd.Series(rng.choice(["TI_1", "FI_2", "QI_3"], size=50_000), dtype="str")
+    fast_codes, fast_names = _tag_codes(col, {"QI_3": None, "TI_1": None, "FI_2": None, "XX_9": None})
+    slow_codes, slow_names = _tag_codes(col, {})
+    assert sorted(fast_names) == sorted(slow_names) == ["FI_2", "QI_3", "TI_1"]
+    for name in fast_names:
+        np.testing.assert_array_equal(np.flatnonzero(fast_codes == fast_names.index(name)),
+                                      np.flatnonzero(slow_codes == slow_names.index(name)))
+    # a tag the config does not want, or one written with a trailing blank: the general path
+    odd = pd.concat([col, pd.Series(["TI_1 ", "ZZ_0"], dtype="str")], ignore_index=True)
+    codes, names = _tag_codes(odd, {"TI_1": None, "FI_2": None, "QI_3": None})
+    assert "ZZ_0" in names and names.count("TI_1") == 2  # stripped: merged later by name
