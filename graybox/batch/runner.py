@@ -238,19 +238,42 @@ def connect(address: str, timeout_s: float):
     return client
 
 
-def check_versions(client) -> None:
-    """Client and workers must run the same graybox and the same core packages."""
-    import graybox
+STACK = ("graybox", "numpy", "scipy", "pandas", "lmfit", "emcee", "numba", "pint")
 
+
+def stack_versions() -> dict[str, str]:
+    """The versions of graybox and the packages its numbers depend on, in this process."""
+    from importlib.metadata import PackageNotFoundError, version
+
+    out = {}
+    for name in STACK:
+        try:
+            out[name] = version(name)
+        except PackageNotFoundError:
+            out[name] = "missing"
+    return out
+
+
+def version_mismatches(local: dict[str, str], remote: dict[str, dict[str, str]]) -> list[str]:
+    """One line per worker and package whose version differs from the client's."""
+    return [f"{worker}: {name} {got} (here {local[name]})"
+            for worker, versions in sorted(remote.items())
+            for name, got in sorted(versions.items()) if got != local.get(name)]
+
+
+def check_versions(client) -> None:
+    """Client and workers must run the same graybox and the same numerical packages (Dask's
+    own check covers Python, dask, distributed and its dependencies)."""
     try:
         client.get_versions(check=True)
     except ValueError as exc:
         raise BatchError(f"the cluster's package versions differ from this machine's: {exc}",
                          hint="install the same versions on the workers") from None
-    remote = client.run(lambda: __import__("graybox").__version__)
-    bad = {w: v for w, v in remote.items() if v != graybox.__version__}
+    bad = version_mismatches(stack_versions(), client.run(stack_versions))
     if bad:
-        raise BatchError(f"workers run other graybox versions than {graybox.__version__}: {bad}")
+        raise BatchError("workers run other package versions than this machine: " + "; ".join(bad[:8])
+                         + (f"; and {len(bad) - 8} more" if len(bad) > 8 else ""),
+                         hint="install the same versions on the workers (e.g. from one lock file)")
 
 
 def run_cluster(todo: list[tuple[Job, dict]], settings: BatchSettings, client) -> list[JobOutcome]:

@@ -247,9 +247,8 @@ def _static_segment(b: Batch, funcs, seg: SegmentPlan, outputs, sens_out, n_c) -
     if sens_out is not None and funcs.n_p:
         gp = np.zeros((funcs.n_y, funcs.n_p, knots.size, b.n_sets))
         funcs.fns["gp"](x, u, p, gp)
-    pos = {int(k): i for i, k in enumerate(knots)}
     for r, o in enumerate(funcs.spec.output_names):
-        rows = np.array([pos[int(k)] for k in seg.obs_knot[o]], dtype=int)
+        rows = np.searchsorted(knots, seg.obs_knot[o])  # knots are sorted and hold every observed knot
         idx = seg.obs_index[o]
         outputs[o][:, idx] = g[r][rows].T
         if sens_out is not None:

@@ -167,3 +167,14 @@ def test_seeds_depend_on_the_job_not_the_order():
     assert job_seed(3, "U01") == job_seed(3, "U01")
     assert job_seed(3, "U01") != job_seed(3, "U02")
     assert job_seed(3, "U01") != job_seed(4, "U01")
+
+
+def test_version_mismatch_names_worker_and_package():
+    from graybox.batch.runner import stack_versions, version_mismatches
+
+    here = stack_versions()
+    assert set(here) >= {"graybox", "numpy", "scipy", "lmfit", "emcee", "numba"}
+    assert version_mismatches(here, {"tcp://w1:1": dict(here), "tcp://w2:2": dict(here)}) == []
+    other = dict(here, numba="0.0.1")
+    lines = version_mismatches(here, {"tcp://w1:1": dict(here), "tcp://w2:2": other})
+    assert lines == [f"tcp://w2:2: numba 0.0.1 (here {here['numba']})"]
