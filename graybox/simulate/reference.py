@@ -235,10 +235,9 @@ def _knot_observations(funcs, seg: SegmentPlan) -> dict[int, list[tuple[int, str
 def _static_segment(b: Batch, funcs, seg: SegmentPlan, outputs, sens_out, n_c) -> None:
     """Outputs of a model without states, vectorised over knots and parameter sets at once:
     inputs broadcast as (n_u, n_knots, 1) against parameters (n_p, 1, n_sets)."""
-    knots = np.unique(np.concatenate([seg.obs_knot[o] for o in funcs.spec.output_names]))
+    knots, u, knot_rows = seg.observed_knots
     if knots.size == 0:
         return
-    u = seg.u[knots].T[:, :, None]
     p = b.p[:, None, :]
     x = np.zeros((0, knots.size, b.n_sets))
     g = np.zeros((funcs.n_y, knots.size, b.n_sets))
@@ -248,7 +247,7 @@ def _static_segment(b: Batch, funcs, seg: SegmentPlan, outputs, sens_out, n_c) -
         gp = np.zeros((funcs.n_y, funcs.n_p, knots.size, b.n_sets))
         funcs.fns["gp"](x, u, p, gp)
     for r, o in enumerate(funcs.spec.output_names):
-        rows = np.searchsorted(knots, seg.obs_knot[o])  # knots are sorted and hold every observed knot
+        rows = knot_rows[o]
         idx = seg.obs_index[o]
         outputs[o][:, idx] = g[r][rows].T
         if sens_out is not None:

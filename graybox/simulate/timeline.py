@@ -20,6 +20,7 @@ Initial states (per segment, per state; the spec says which):
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from functools import cached_property
 
 import numpy as np
 
@@ -44,6 +45,15 @@ class SegmentPlan:
     @property
     def n_knots(self) -> int:
         return int(self.t.size)
+
+    @cached_property
+    def observed_knots(self) -> tuple[np.ndarray, np.ndarray, dict[str, np.ndarray]]:
+        """The knots where some output is compared (sorted), the inputs there (n_u, n_k, 1),
+        and per output the position of each of its observations among those knots: what a
+        model without states evaluates, worked out once per plan."""
+        knots = np.unique(np.concatenate([k for k in self.obs_knot.values()] or [np.zeros(0, np.int64)]))
+        rows = {o: np.searchsorted(knots, k) for o, k in self.obs_knot.items()}
+        return knots, np.ascontiguousarray(self.u[knots].T)[:, :, None], rows
 
     def knot_has_obs(self) -> np.ndarray:
         flag = np.zeros(self.t.size, bool)
