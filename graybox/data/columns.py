@@ -28,24 +28,37 @@ def arrow_text(series: pd.Series):
     return _arrow(series) if pd.api.types.is_string_dtype(series.dtype) else None
 
 
+def text_runs(series: pd.Series) -> tuple[np.ndarray, pd.Series] | None:
+    """``(lengths, values)`` of the runs of equal neighbours when they cover an arrow text
+    column without nulls in few pieces (at most a quarter of its length), else None."""
+    arr = _arrow(series)
+    n = len(series)
+    if arr is None or n <= 2 * _PROBE or arr.null_count:
+        return None
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    probe = arr[:_PROBE]
+    if pc.sum(pc.not_equal(probe[1:], probe[:-1])).as_py() > _PROBE // 4:
+        return None
+    change = np.empty(n, bool)
+    change[0] = True
+    change[1:] = pc.not_equal(arr[1:], arr[:-1]).to_numpy(zero_copy_only=False)
+    starts = np.flatnonzero(change)
+    if starts.size > n // 4:
+        return None
+    return np.diff(np.append(starts, n)), pd.Series(arr.take(pa.array(starts)).to_pandas(), dtype=series.dtype)
+
+
 def text_codes(series: pd.Series) -> tuple[np.ndarray, pd.Series]:
     """``(codes, values)``: ``values.iloc[codes]`` reproduces the column (nulls have code -1
     when hashed; callers reject or map nulls before)."""
-    arr = _arrow(series)
     n = len(series)
-    if arr is not None and n > 2 * _PROBE and arr.null_count == 0:
-        import pyarrow as pa
-        import pyarrow.compute as pc
-
-        probe = arr[:_PROBE]
-        if pc.sum(pc.not_equal(probe[1:], probe[:-1])).as_py() <= _PROBE // 4:
-            change = np.empty(n, bool)
-            change[0] = True
-            change[1:] = pc.not_equal(arr[1:], arr[:-1]).to_numpy(zero_copy_only=False)
-            starts = np.flatnonzero(change)
-            if starts.size <= n // 4:
-                codes = np.repeat(np.arange(starts.size, dtype=np.int64), np.diff(np.append(starts, n)))
-                return codes, pd.Series(arr.take(pa.array(starts)).to_pandas(), dtype=series.dtype)
+    runs = text_runs(series)
+    if runs is not None:
+        lengths, values = runs
+        return np.repeat(np.arange(lengths.size, dtype=np.int64), lengths), values
+    arr = _arrow(series)
     if arr is not None:
         import pyarrow.compute as pc
 

@@ -234,8 +234,11 @@ class QualityVocab:
     def codes_of(self, col: pd.Series) -> np.ndarray:
         from graybox.data.config import normalize_quality
 
-        from graybox.data.columns import text_codes
+        from graybox.data.columns import text_codes, text_runs
 
+        if pd.api.types.is_string_dtype(col.dtype) and (runs := text_runs(col)) is not None:
+            lengths, values = runs  # a flag column is one value for long stretches
+            return np.repeat(np.array([self.code(normalize_quality(u)) for u in values], np.int32), lengths)
         if col.isna().any() or not pd.api.types.is_string_dtype(col.dtype):
             codes, uniq = pd.factorize(col, sort=False)
         else:
