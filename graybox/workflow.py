@@ -28,11 +28,9 @@ from graybox.estimate.problem import Experiment, Problem
 from graybox.runs.artifacts import OutputTrace, plot_overlay, write_fitted_csv
 from graybox.runs.folder import RESULTS, building, sha256_file, write_json
 from graybox.simulate import Engine, plan
+from graybox.versions import PACKAGES, installed_versions
 
 Echo = Callable[[str], None]
-
-PACKAGES = ("numpy", "scipy", "pandas", "lmfit", "emcee", "numba", "pint", "matplotlib")
-
 
 @dataclass
 class Prepared:
@@ -135,15 +133,7 @@ def traces_for(problem: Problem, x: np.ndarray) -> list[OutputTrace]:
 
 
 def package_versions() -> dict[str, str]:
-    from importlib.metadata import PackageNotFoundError, version
-
-    out = {}
-    for name in PACKAGES:
-        try:
-            out[name] = version(name)
-        except PackageNotFoundError:
-            out[name] = "not installed"
-    return out
+    return installed_versions(PACKAGES)
 
 
 def run_record(study: Study, prepared: Prepared, started: datetime, wall_s: float) -> dict:

@@ -243,15 +243,9 @@ STACK = ("graybox", "numpy", "scipy", "pandas", "lmfit", "emcee", "numba", "pint
 
 def stack_versions() -> dict[str, str]:
     """The versions of graybox and the packages its numbers depend on, in this process."""
-    from importlib.metadata import PackageNotFoundError, version
+    from graybox.versions import installed_versions
 
-    out = {}
-    for name in STACK:
-        try:
-            out[name] = version(name)
-        except PackageNotFoundError:
-            out[name] = "missing"
-    return out
+    return installed_versions(STACK, missing="missing")
 
 
 def version_mismatches(local: dict[str, str], remote: dict[str, dict[str, str]]) -> list[str]:
