@@ -28,7 +28,7 @@ from graybox.estimate.problem import Experiment, Problem
 from graybox.runs.artifacts import OutputTrace, plot_overlay, write_fitted_csv
 from graybox.runs.folder import RESULTS, building, sha256_file, write_json
 from graybox.simulate import Engine, plan
-from graybox.versions import PACKAGES, installed_versions
+from graybox.versions import installed_versions
 
 Echo = Callable[[str], None]
 
@@ -132,10 +132,6 @@ def traces_for(problem: Problem, x: np.ndarray) -> list[OutputTrace]:
     return traces
 
 
-def package_versions() -> dict[str, str]:
-    return installed_versions(PACKAGES)
-
-
 def run_record(study: Study, prepared: Prepared, started: datetime, wall_s: float) -> dict:
     files = []
     for ex in prepared.problem.experiments:
@@ -155,7 +151,7 @@ def run_record(study: Study, prepared: Prepared, started: datetime, wall_s: floa
         "wall_s": wall_s,
         "python": sys.version.split()[0],
         "platform": platform.platform(),
-        "packages": package_versions(),
+        "packages": installed_versions(),
     }
 
 

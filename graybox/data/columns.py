@@ -16,11 +16,10 @@ import pandas as pd
 _PROBE = 4096
 
 
-def _arrow(series: pd.Series, combine: bool = True):
+def _arrow(series: pd.Series):
+    """The column's pyarrow array as one contiguous chunk, or None when it is not arrow-backed."""
     arr = getattr(series.array, "_pa_array", None)
-    if arr is None or not combine:
-        return arr
-    return arr.combine_chunks()
+    return None if arr is None else arr.combine_chunks()
 
 
 def arrow_text(series: pd.Series):
@@ -28,12 +27,10 @@ def arrow_text(series: pd.Series):
     return _arrow(series) if pd.api.types.is_string_dtype(series.dtype) else None
 
 
-def text_runs(series: pd.Series) -> tuple[np.ndarray, pd.Series] | None:
-    """``(lengths, values)`` of the runs of equal neighbours when they cover an arrow text
-    column without nulls in few pieces (at most a quarter of its length), else None."""
-    arr = _arrow(series)
-    n = len(series)
-    if arr is None or n <= 2 * _PROBE or arr.null_count:
+def _runs(arr, dtype) -> tuple[np.ndarray, pd.Series] | None:
+    """Run lengths and values of a contiguous arrow array, when it has few runs."""
+    n = len(arr)
+    if n <= 2 * _PROBE or arr.null_count:
         return None
     import pyarrow as pa
     import pyarrow.compute as pc
@@ -47,21 +44,27 @@ def text_runs(series: pd.Series) -> tuple[np.ndarray, pd.Series] | None:
     starts = np.flatnonzero(change)
     if starts.size > n // 4:
         return None
-    return np.diff(np.append(starts, n)), pd.Series(arr.take(pa.array(starts)).to_pandas(), dtype=series.dtype)
+    return np.diff(np.append(starts, n)), pd.Series(arr.take(pa.array(starts)).to_pandas(), dtype=dtype)
+
+
+def text_runs(series: pd.Series) -> tuple[np.ndarray, pd.Series] | None:
+    """``(lengths, values)`` of the runs of equal neighbours when they cover an arrow text
+    column without nulls in few pieces (at most a quarter of its length), else None."""
+    arr = _arrow(series)
+    return None if arr is None else _runs(arr, series.dtype)
 
 
 def text_codes(series: pd.Series) -> tuple[np.ndarray, pd.Series]:
     """``(codes, values)``: ``values.iloc[codes]`` reproduces the column (nulls have code -1
     when hashed; callers reject or map nulls before)."""
-    n = len(series)
-    runs = text_runs(series)
-    if runs is not None:
-        lengths, values = runs
-        return np.repeat(np.arange(lengths.size, dtype=np.int64), lengths), values
     arr = _arrow(series)
     if arr is not None:
         import pyarrow.compute as pc
 
+        runs = _runs(arr, series.dtype)
+        if runs is not None:
+            lengths, values = runs
+            return np.repeat(np.arange(lengths.size, dtype=np.int64), lengths), values
         enc = pc.dictionary_encode(arr)  # what pandas.factorize does on arrow text, minus its wrapping
         codes = enc.indices.to_numpy(zero_copy_only=False)
         codes = np.where(np.isnan(codes), -1, codes).astype(np.int64) if enc.null_count else codes.astype(np.int64)

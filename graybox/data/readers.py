@@ -248,16 +248,12 @@ class QualityVocab:
 
 
 def _drop_empty_rows(frame: pd.DataFrame, numbers: np.ndarray):
-    empty = None
+    empty = np.ones(len(frame), bool)
     for name in frame.columns:  # column by column: most columns of most files have no blank cell
-        blank = frame[name].isna().to_numpy()
-        empty = blank if empty is None else empty & blank
+        empty &= frame[name].isna().to_numpy()
         if not empty.any():
             return frame, numbers
-    if empty is not None and empty.any():
-        frame = frame.loc[~empty].reset_index(drop=True)
-        numbers = numbers[~empty]
-    return frame, numbers
+    return frame.loc[~empty].reset_index(drop=True), numbers[~empty]
 
 
 def _tag_codes(tag_col: pd.Series, wanted) -> tuple[np.ndarray, list[str]]:

@@ -190,13 +190,19 @@ def _first_rows(codes: np.ndarray, n_unique: int) -> np.ndarray:
 def _iso_text(raw: pd.Series, place: Place) -> Stamps:
     codes, uniq = text_codes(raw)
     uns = _iso_fast(uniq)  # arrow refuses a stamp without an offset, so success means all are aware
-    if uns is not None:
-        return Stamps(uns[codes], np.zeros(codes.size, bool))
+    if uns is None:
+        uns = _iso_general(raw, codes, uniq, place)
+    return Stamps(uns[codes], np.zeros(codes.size, bool))
+
+
+def _iso_general(raw: pd.Series, codes: np.ndarray, uniq: pd.Series, place: Place) -> np.ndarray:
+    """UTC nanoseconds of the distinct stamps ``uniq`` after trimming blanks and reading a
+    decimal comma; the errors for naive, mixed and unreadable stamps."""
     u = uniq.astype("str").str.strip()
     text = u.str.replace(",", ".", regex=False)
-    uns = _iso_fast(text)  # the same after trimming blanks and reading a decimal comma
+    uns = _iso_fast(text)
     if uns is not None:
-        return Stamps(uns[codes], np.zeros(codes.size, bool))
+        return uns
     aware = regex_matches(u, _ISO_OFFSET_PD)
     if not aware.all():
         first = _first_rows(codes, len(u))
@@ -210,15 +216,14 @@ def _iso_text(raw: pd.Series, place: Place) -> Stamps:
         raise DataError(f"'{raw.iloc[naive_i]}' has no UTC offset, but time_format = 'iso' needs one on every stamp",
                         where=place.at(naive_i),
                         hint="for wall-clock stamps set time_format = \"local\" and timezone = \"...\"")
-    # something arrow's parser refuses: pandas' reads more spellings and finds the bad one
+    # a spelling arrow's parser refuses: pandas' reads more of them and finds the bad one
     parsed = pd.to_datetime(text, format="ISO8601", utc=True, errors="coerce")
     bad = parsed.isna().to_numpy()
     if bad.any():
         i = int(_first_rows(codes, len(u))[np.flatnonzero(bad)].min())
         raise DataError(f"'{raw.iloc[i]}' is not an ISO 8601 date and time", where=place.at(i),
                         hint="write e.g. 2026-01-05T06:00:00+01:00")
-    uns = np.asarray(pd.DatetimeIndex(parsed).as_unit("ns").asi8, np.int64)
-    return Stamps(uns[codes], np.zeros(codes.size, bool))
+    return np.asarray(pd.DatetimeIndex(parsed).as_unit("ns").asi8, np.int64)
 
 
 def _iso_fast(text: pd.Series) -> np.ndarray | None:

@@ -51,7 +51,7 @@ class SegmentPlan:
         """The knots where some output is compared (sorted), the inputs there (n_u, n_k, 1),
         and per output the position of each of its observations among those knots: what a
         model without states evaluates, worked out once per plan."""
-        knots = np.unique(np.concatenate([k for k in self.obs_knot.values()] or [np.zeros(0, np.int64)]))
+        knots = np.unique(np.concatenate(list(self.obs_knot.values()) or [np.zeros(0, np.int64)]))
         rows = {o: np.searchsorted(knots, k) for o, k in self.obs_knot.items()}
         return knots, np.ascontiguousarray(self.u[knots].T)[:, :, None], rows
 
