@@ -16,19 +16,21 @@ import pandas as pd
 _PROBE = 4096
 
 
-def _arrow(series: pd.Series):
-    """The column's pyarrow array as one contiguous chunk, or None when it is not arrow-backed."""
-    arr = getattr(series.array, "_pa_array", None)
-    return None if arr is None else arr.combine_chunks()
+def _chunked(series: pd.Series):
+    """The column's pyarrow (chunked) array as pandas holds it, or None when it is not
+    arrow-backed.  Comparisons, lookups, casts and takes run on it as it is; combining the
+    chunks a parallel CSV parse leaves would copy every text once more."""
+    return getattr(series.array, "_pa_array", None)
 
 
 def arrow_text(series: pd.Series):
-    """The column as one contiguous pyarrow string array, or None when it is not arrow text."""
-    return _arrow(series) if pd.api.types.is_string_dtype(series.dtype) else None
+    """The column as a pyarrow (chunked) string array, or None when it is not arrow text."""
+    return _chunked(series) if pd.api.types.is_string_dtype(series.dtype) else None
 
 
-def _runs(arr, dtype) -> tuple[np.ndarray, pd.Series] | None:
-    """Run lengths and values of a contiguous arrow array, when it has few runs."""
+def _runs(arr, dtype=None) -> tuple[np.ndarray, pd.Series] | None:
+    """Run lengths and values of an arrow (chunked) array, when it has few runs (the values
+    as a pandas Series of ``dtype``, or as an arrow array when ``dtype`` is None)."""
     n = len(arr)
     if n <= 2 * _PROBE or arr.null_count:
         return None
@@ -44,20 +46,22 @@ def _runs(arr, dtype) -> tuple[np.ndarray, pd.Series] | None:
     starts = np.flatnonzero(change)
     if starts.size > n // 4:
         return None
-    return np.diff(np.append(starts, n)), pd.Series(arr.take(pa.array(starts)).to_pandas(), dtype=dtype)
+    values = arr.take(pa.array(starts))
+    return np.diff(np.append(starts, n)), values if dtype is None else pd.Series(values.to_pandas(), dtype=dtype)
 
 
-def text_runs(series: pd.Series) -> tuple[np.ndarray, pd.Series] | None:
+def text_runs(series: pd.Series, arrow: bool = False) -> tuple[np.ndarray, pd.Series] | None:
     """``(lengths, values)`` of the runs of equal neighbours when they cover an arrow text
-    column without nulls in few pieces (at most a quarter of its length), else None."""
-    arr = _arrow(series)
-    return None if arr is None else _runs(arr, series.dtype)
+    column without nulls in few pieces (at most a quarter of its length), else None; the
+    values as a Series like the column, or with ``arrow`` as a pyarrow array."""
+    arr = arrow_text(series)
+    return None if arr is None else _runs(arr, None if arrow else series.dtype)
 
 
 def text_codes(series: pd.Series) -> tuple[np.ndarray, pd.Series]:
     """``(codes, values)``: ``values.iloc[codes]`` reproduces the column (nulls have code -1
     when hashed; callers reject or map nulls before)."""
-    arr = _arrow(series)
+    arr = _chunked(series)
     if arr is not None:
         import pyarrow.compute as pc
 
@@ -65,7 +69,7 @@ def text_codes(series: pd.Series) -> tuple[np.ndarray, pd.Series]:
         if runs is not None:
             lengths, values = runs
             return np.repeat(np.arange(lengths.size, dtype=np.int64), lengths), values
-        enc = pc.dictionary_encode(arr)  # what pandas.factorize does on arrow text, minus its wrapping
+        enc = pc.dictionary_encode(arr.combine_chunks())  # pandas.factorize on arrow text, minus its wrapping
         codes = enc.indices.to_numpy(zero_copy_only=False)
         codes = np.where(np.isnan(codes), -1, codes).astype(np.int64) if enc.null_count else codes.astype(np.int64)
         return codes, pd.Series(enc.dictionary.to_pandas(), dtype=series.dtype)
@@ -76,7 +80,7 @@ def text_codes(series: pd.Series) -> tuple[np.ndarray, pd.Series]:
 def regex_matches(texts: pd.Series, pattern: str) -> np.ndarray:
     """Whether each text contains a match of ``pattern``: in pyarrow's RE2 engine when the
     column is arrow-backed (much faster), else in Python's."""
-    arr = _arrow(texts)
+    arr = _chunked(texts)
     if arr is not None:
         try:
             import pyarrow.compute as pc

@@ -112,12 +112,11 @@ def stuck(t_ns: np.ndarray, values: np.ndarray, usable: np.ndarray, deadband: fl
     v, t = values[idx], t_ns[idx]
     # candidate stretches: every step within 2*deadband (necessary for a run)
     close = np.abs(np.diff(v)) <= 2.0 * deadband
-    starts = np.flatnonzero(np.diff(np.concatenate([[0], close.astype(np.int8), [0]])) == 1)
-    ends = np.flatnonzero(np.diff(np.concatenate([[0], close.astype(np.int8), [0]])) == -1)  # exclusive, in steps
+    edges = np.diff(np.concatenate([[0], close.astype(np.int8), [0]]))
+    starts, ends = np.flatnonzero(edges == 1), np.flatnonzero(edges == -1)  # ends exclusive, in steps
     min_ns = min_duration_s * 1e9
-    for a, b in zip(starts, ends):  # samples a .. b (inclusive)
-        if b - a + 1 < min_samples or (t[b] - t[a]) < min_ns:
-            continue
+    long_enough = (ends - starts + 1 >= min_samples) & (t[ends] - t[starts] >= min_ns)
+    for a, b in zip(starts[long_enough], ends[long_enough]):  # samples a .. b (inclusive)
         if deadband == 0.0:
             _mark(out, idx, t, a, b, min_samples, min_ns)
             continue

@@ -270,9 +270,11 @@ def _tag_codes(tag_col: pd.Series, wanted) -> tuple[np.ndarray, list[str]]:
         names = list(wanted)
         idx = pc.index_in(arr, value_set=pa.array(names, pa.string()))
         if idx.null_count == 0:
-            codes = idx.to_numpy(zero_copy_only=False).astype(np.int64)
+            codes = idx.to_numpy(zero_copy_only=False)
             present = np.flatnonzero(np.bincount(codes, minlength=len(names)))
-            renumber = np.full(len(names), -1, np.int64)
+            if present.size == len(names):
+                return codes, names
+            renumber = np.full(len(names), -1, np.int32)
             renumber[present] = np.arange(present.size)
             return renumber[codes], [names[k] for k in present]
     codes, names = text_codes(tag_col)
@@ -305,7 +307,7 @@ def _to_raw(path: Path, frame: pd.DataFrame, word: str, numbers: np.ndarray, opt
         return RawTable(path, word, numbers, time, tags, present, time_column)
     tag_col = frame[opts.tag_column]
     if isinstance(tag_col.dtype, pd.CategoricalDtype):
-        codes = np.asarray(tag_col.cat.codes, dtype=np.int64)
+        codes = np.asarray(tag_col.cat.codes)  # int8 for up to 127 tags
         names = [str(n).strip() for n in tag_col.cat.categories]
     else:
         if not pd.api.types.is_string_dtype(tag_col.dtype) or tag_col.dtype == object:
@@ -315,9 +317,9 @@ def _to_raw(path: Path, frame: pd.DataFrame, word: str, numbers: np.ndarray, opt
     numeric = pd.api.types.is_numeric_dtype(value_col.dtype) and not pd.api.types.is_bool_dtype(value_col.dtype)
     all_values = value_col.to_numpy(dtype=float, na_value=np.nan) if numeric else None
     all_quality = vocab.codes_of(frame[opts.quality_column]) if opts.quality_column else None
-    small = codes.astype(np.int16) if len(names) < 32000 else codes  # 16-bit keys sort by radix
-    order = np.argsort(small, kind="stable")
-    bounds = np.searchsorted(codes[order], np.arange(len(names) + 1))
+    small = codes.astype(np.int16) if len(names) < 32000 and codes.itemsize > 2 else codes  # radix-sorted
+    order = np.argsort(small, kind="stable")  # rows grouped by tag (uncoded rows, -1, first)
+    bounds = np.cumsum(np.bincount(small.astype(np.intp) + 1, minlength=len(names) + 1))  # rows before tag k
     for k, name in enumerate(names):
         if name not in wanted:
             continue

@@ -25,7 +25,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from graybox.data.columns import arrow_text as _arrow_text, regex_matches, text_codes
+from graybox.data.columns import arrow_text as _arrow_text, regex_matches, text_codes, text_runs
 from graybox.data.config import TimeSpec
 from graybox.errors import DataError
 
@@ -188,6 +188,9 @@ def _first_rows(codes: np.ndarray, n_unique: int) -> np.ndarray:
 
 
 def _iso_text(raw: pd.Series, place: Place) -> Stamps:
+    runs = text_runs(raw, arrow=True)  # a long table repeats each stamp once per tag
+    if runs is not None and (uns := _iso_arrow(runs[1])) is not None:
+        return Stamps(np.repeat(uns, runs[0]), np.zeros(len(raw), bool))
     codes, uniq = text_codes(raw)
     uns = _iso_fast(uniq)  # arrow refuses a stamp without an offset, so success means all are aware
     if uns is None:
@@ -231,8 +234,11 @@ def _iso_fast(text: pd.Series) -> np.ndarray | None:
     when it refuses any stamp, which it does for every stamp without an offset (it never
     guesses a zone).  Agreement with pandas' parser is checked in the tests."""
     arr = _arrow_text(text)
-    if arr is None:
-        return None
+    return None if arr is None else _iso_arrow(arr)
+
+
+def _iso_arrow(arr) -> np.ndarray | None:
+    """:func:`_iso_fast` on a pyarrow string array."""
     import pyarrow as pa
 
     try:

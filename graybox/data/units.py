@@ -151,12 +151,14 @@ def _affine(fn, label: str, where: str) -> tuple[float, float]:
     return float(scale), float(offset)
 
 
+@lru_cache(maxsize=4096)
 def tag_conversion(spec: TagUnits, model_units: str, *, tag: str, where: str) -> Conversion:
     """The affine map from the tag's raw numbers into model units.
 
     Raises ConfigError (located at ``where``) for unknown units, a conversion that cannot
     exist (naming both units), and missing declarations (temperature kind, atmosphere,
-    standard conditions, molar mass)."""
+    standard conditions, molar mass).  Remembered per declaration (pint's arithmetic costs
+    about a millisecond a tag; a rerun, a batch or a window scan asks again with the same)."""
     ureg = data_registry()
     model_u = parse_unit(model_units, where, "model")
     units_text = spec.units.strip()

@@ -126,3 +126,13 @@ def test_local_and_serial_need_a_timezone(tmp_path):
         load(tmp_path, dict(TABLE, time_format="local"))
     with pytest.raises(ConfigError, match="did you mean Europe/Berlin"):
         load(tmp_path, dict(TABLE, time_format="local", timezone="Europe/Berlim"))
+
+
+def test_quartiles_match_numpy_percentile():
+    # reference: numpy.percentile's default (linear) method, a general-purpose library
+    from graybox.data.assemble import quartiles
+
+    rng = np.random.default_rng(3)
+    for x in (rng.integers(0, 10**12, 1001), np.full(7, 5, np.int64), np.array([3, 1]), np.array([9]),
+              (rng.normal(10, 0.5, 10_000) * 1e9).astype(np.int64)):
+        np.testing.assert_allclose(quartiles(x), np.percentile(x, [25, 50, 75]), rtol=1e-15, atol=0)
