@@ -46,8 +46,21 @@ def _runs(arr, dtype=None) -> tuple[np.ndarray, pd.Series] | None:
     starts = np.flatnonzero(change)
     if starts.size > n // 4:
         return None
-    values = arr.take(pa.array(starts))
+    values = _take_sorted(arr, starts)
     return np.diff(np.append(starts, n)), values if dtype is None else pd.Series(values.to_pandas(), dtype=dtype)
+
+
+def _take_sorted(arr, idx: np.ndarray):
+    """``arr.take(idx)`` for ascending ``idx``, chunk by chunk: arrow's take on a chunked
+    array joins the chunks first, which copies every text once more."""
+    import pyarrow as pa
+
+    if not isinstance(arr, pa.ChunkedArray):
+        return arr.take(pa.array(idx))
+    offsets = np.cumsum([0] + [len(c) for c in arr.chunks])
+    cuts = np.searchsorted(idx, offsets)
+    return pa.chunked_array([c.take(pa.array(idx[cuts[k]:cuts[k + 1]] - offsets[k]))
+                             for k, c in enumerate(arr.chunks)], type=arr.type)
 
 
 def text_runs(series: pd.Series, arrow: bool = False) -> tuple[np.ndarray, pd.Series] | None:

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import difflib
 import hashlib
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -281,6 +282,24 @@ def _tag_codes(tag_col: pd.Series, wanted) -> tuple[np.ndarray, list[str]]:
     return codes, [str(n).strip() for n in names]
 
 
+def _coded_tags(tag_col: pd.Series, wanted) -> tuple[np.ndarray, list[str]]:
+    """Each row's tag as a code into the file's (stripped) tag names."""
+    if isinstance(tag_col.dtype, pd.CategoricalDtype):
+        return np.asarray(tag_col.cat.codes), [str(n).strip() for n in tag_col.cat.categories]
+    if not pd.api.types.is_string_dtype(tag_col.dtype) or tag_col.dtype == object:
+        tag_col = tag_col.astype("str")
+    return _tag_codes(tag_col, wanted)
+
+
+def _grouped(codes: np.ndarray, n_names: int) -> tuple[np.ndarray, np.ndarray]:
+    """Row positions grouped by tag code, each group in recorded order (uncoded rows, -1,
+    first), and where each group starts: code ``k``'s rows are ``order[bounds[k]:bounds[k + 1]]``."""
+    small = codes.astype(np.int16) if n_names < 32000 and codes.itemsize > 2 else codes  # radix-sorted
+    order = np.argsort(small, kind="stable")
+    bounds = np.cumsum(np.bincount(small.astype(np.intp) + 1, minlength=n_names + 1))
+    return order, bounds
+
+
 def _to_raw(path: Path, frame: pd.DataFrame, word: str, numbers: np.ndarray, opts: ReadOptions,
             time_column: str | None, wanted: dict[str, str | None], header: list[str],
             vocab: QualityVocab) -> RawTable:
@@ -305,21 +324,16 @@ def _to_raw(path: Path, frame: pd.DataFrame, word: str, numbers: np.ndarray, opt
                                 hint="check the tag's quality_column")
             tags[tag] = TagRaw(tag, values, quality, np.arange(len(frame)))
         return RawTable(path, word, numbers, time, tags, present, time_column)
-    tag_col = frame[opts.tag_column]
-    if isinstance(tag_col.dtype, pd.CategoricalDtype):
-        codes = np.asarray(tag_col.cat.codes)  # int8 for up to 127 tags
-        names = [str(n).strip() for n in tag_col.cat.categories]
-    else:
-        if not pd.api.types.is_string_dtype(tag_col.dtype) or tag_col.dtype == object:
-            tag_col = tag_col.astype("str")
-        codes, names = _tag_codes(tag_col, wanted)
+    with ThreadPoolExecutor(max_workers=1) as helper:
+        # the quality flags are coded on a second thread (pyarrow releases the GIL) while this
+        # one codes and groups the tags; nothing else touches the vocabulary meanwhile
+        quality_job = helper.submit(vocab.codes_of, frame[opts.quality_column]) if opts.quality_column else None
+        codes, names = _coded_tags(frame[opts.tag_column], wanted)
+        order, bounds = _grouped(codes, len(names))
+        all_quality = quality_job.result() if quality_job is not None else None
     value_col = frame[opts.value_column]
     numeric = pd.api.types.is_numeric_dtype(value_col.dtype) and not pd.api.types.is_bool_dtype(value_col.dtype)
     all_values = value_col.to_numpy(dtype=float, na_value=np.nan) if numeric else None
-    all_quality = vocab.codes_of(frame[opts.quality_column]) if opts.quality_column else None
-    small = codes.astype(np.int16) if len(names) < 32000 and codes.itemsize > 2 else codes  # radix-sorted
-    order = np.argsort(small, kind="stable")  # rows grouped by tag (uncoded rows, -1, first)
-    bounds = np.cumsum(np.bincount(small.astype(np.intp) + 1, minlength=len(names) + 1))  # rows before tag k
     for k, name in enumerate(names):
         if name not in wanted:
             continue

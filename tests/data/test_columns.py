@@ -107,3 +107,25 @@ def test_tag_lookup_fast_path_matches_the_general_coding():
     odd = pd.concat([col, pd.Series(["TI_1 ", "ZZ_0"], dtype="str")], ignore_index=True)
     codes, names = _tag_codes(odd, {"TI_1": None, "FI_2": None, "QI_3": None})
     assert "ZZ_0" in names and names.count("TI_1") == 2  # stripped: merged later by name
+
+
+def test_chunked_arrow_columns_code_like_one_chunk():
+    # pandas' parallel CSV parse leaves text columns in several arrow chunks; the run finder
+    # and its chunk-by-chunk take must give what the same column in one chunk gives
+    # (reference: pyarrow's own take on the combined array, and pandas.factorize)
+    import pyarrow as pa
+
+    from graybox.data.columns import _take_sorted, text_runs
+
+    rng = np.random.default_rng(5)
+    texts = np.repeat(rng.choice(["Good", "Bad", "Uncertain"], size=3_000), rng.integers(1, 20, 3_000))
+    pieces = np.array_split(texts, 7)
+    chunked = pa.chunked_array([pa.array(p.tolist(), pa.string()) for p in pieces])
+    col = pd.Series(pd.arrays.ArrowStringArray(chunked))
+    assert col.array._pa_array.num_chunks == 7
+    lengths, values = text_runs(col)
+    np.testing.assert_array_equal(np.repeat(values.to_numpy(), lengths), texts)
+    codes, uniq = text_codes(col)
+    np.testing.assert_array_equal(uniq.to_numpy()[codes], texts)
+    idx = np.sort(rng.choice(texts.size, 500, replace=False))
+    assert _take_sorted(chunked, idx).to_pylist() == chunked.combine_chunks().take(pa.array(idx)).to_pylist()
