@@ -129,3 +129,25 @@ def test_chunked_arrow_columns_code_like_one_chunk():
     np.testing.assert_array_equal(uniq.to_numpy()[codes], texts)
     idx = np.sort(rng.choice(texts.size, 500, replace=False))
     assert _take_sorted(chunked, idx).to_pylist() == chunked.combine_chunks().take(pa.array(idx)).to_pylist()
+
+
+def test_periodic_tag_grouping_equals_the_sort():
+    # a long export sorted by time with every tag at every stamp groups without a sort; the
+    # reference is numpy's stable argsort (the general path), on periodic and broken patterns
+    from graybox.data.readers import _grouped, _periodic
+
+    def by_sort(codes, m):
+        order = np.argsort(codes, kind="stable")
+        return order, np.cumsum(np.bincount(codes + 1, minlength=m + 1))
+
+    periodic = np.tile(np.array([2, 0, 3, 1], np.int32), 1000)
+    assert _periodic(periodic, 4) is not None
+    broken = periodic.copy()
+    broken[[17, 18]] = broken[[18, 17]]  # two rows swapped: no longer periodic
+    missing = periodic.copy()
+    missing[5] = -1  # a row of an unwanted tag
+    for codes in (periodic, broken, missing, periodic[:-1]):
+        got, want = _grouped(codes, 4), by_sort(codes, 4)
+        np.testing.assert_array_equal(got[0], want[0])
+        np.testing.assert_array_equal(got[1], want[1])
+    assert _periodic(broken, 4) is None and _periodic(missing, 4) is None
