@@ -10,7 +10,8 @@ The scenario is invented: five inputs and five outputs of a process unit logged 
 with a bad-quality stretch and an out-of-range run per tag, units to convert (degF readings,
 kW, kg/h, psig, %-of-span).  The two sides run alternately and the best of ``--repeat``
 timings of each is compared (the machine's load varies); one warm-up load first pays the
-one-time setup (the unit registry), as any second load in a process would not.
+one-time setup (the unit registry; each tag's unit conversion, which is remembered per
+declaration), as any second load in a process would not.
 """
 
 from __future__ import annotations
