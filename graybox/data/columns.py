@@ -71,14 +71,15 @@ def text_runs(series: pd.Series, arrow: bool = False) -> tuple[np.ndarray, pd.Se
     return None if arr is None else _runs(arr, None if arrow else series.dtype)
 
 
-def text_codes(series: pd.Series) -> tuple[np.ndarray, pd.Series]:
+def text_codes(series: pd.Series, runs: bool = True) -> tuple[np.ndarray, pd.Series]:
     """``(codes, values)``: ``values.iloc[codes]`` reproduces the column (nulls have code -1
-    when hashed; callers reject or map nulls before)."""
+    when hashed; callers reject or map nulls before).  ``runs=False``: the caller has looked
+    for runs already (:func:`text_runs`) and found none; hash straight away."""
     arr = _chunked(series)
     if arr is not None:
         import pyarrow.compute as pc
 
-        runs = _runs(arr, series.dtype)
+        runs = _runs(arr, series.dtype) if runs else None
         if runs is not None:
             lengths, values = runs
             return np.repeat(np.arange(lengths.size, dtype=np.int64), lengths), values

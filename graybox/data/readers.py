@@ -243,7 +243,7 @@ class QualityVocab:
         if col.isna().any() or not pd.api.types.is_string_dtype(col.dtype):
             codes, uniq = pd.factorize(col, sort=False)
         else:
-            codes, uniq = text_codes(col)
+            codes, uniq = text_codes(col, runs=False)  # no runs: looked for above
         table = np.array([self.code(normalize_quality(u)) for u in uniq] + [self.code("")], dtype=np.int32)
         return table[codes]  # code -1 (missing) maps to the blank flag
 

@@ -189,10 +189,15 @@ def _first_rows(codes: np.ndarray, n_unique: int) -> np.ndarray:
 
 def _iso_text(raw: pd.Series, place: Place) -> Stamps:
     runs = text_runs(raw, arrow=True)  # a long table repeats each stamp once per tag
-    if runs is not None and (uns := _iso_arrow(runs[1])) is not None:
-        return Stamps(np.repeat(uns, runs[0]), np.zeros(len(raw), bool))
-    codes, uniq = text_codes(raw)
-    uns = _iso_fast(uniq)  # arrow refuses a stamp without an offset, so success means all are aware
+    if runs is not None:
+        lengths, values = runs
+        uns = _iso_arrow(values)  # arrow refuses a stamp without an offset: success means all are aware
+        if uns is None:
+            codes = np.repeat(np.arange(lengths.size, dtype=np.int64), lengths)
+            uns = _iso_general(raw, codes, pd.Series(values.to_pandas(), dtype=raw.dtype), place)
+        return Stamps(np.repeat(uns, lengths), np.zeros(len(raw), bool))
+    codes, uniq = text_codes(raw, runs=False)
+    uns = _iso_fast(uniq)
     if uns is None:
         uns = _iso_general(raw, codes, uniq, place)
     return Stamps(uns[codes], np.zeros(codes.size, bool))
