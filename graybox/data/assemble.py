@@ -22,7 +22,7 @@ every output is dropped (and noted).
 from __future__ import annotations
 
 import difflib
-from concurrent.futures import ThreadPoolExecutor
+from concurrent.futures import Executor, Future, ThreadPoolExecutor
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
@@ -33,7 +33,7 @@ import numpy as np
 from graybox.data.config import ROLE_INPUT, DataSpec, SymbolInfo, TagSpec, parse_data_table
 from graybox.data.quality import (REASON_NONEXISTENT, REASON_QUALITY, REASON_RANGE, REASON_SPIKE, REASON_STUCK,
                                   bad_quality, count_first_reasons, held_repeats, out_of_range, spikes, stuck)
-from graybox.data.readers import QualityVocab, RawTable, file_sha256, read_table
+from graybox.data.readers import QualityVocab, RawTable, Rows, file_sha256, read_table, row_count, take_rows
 from graybox.data.record import InputSeries, OutputSeries, Record, Segment
 from graybox.data.report import DataReport, SegmentReport, TagReport
 from graybox.data.timestamps import NAT, Place, parse_stamps
@@ -50,7 +50,7 @@ class Chunk:
     file: int  # index into the experiment's files
     word: str
     table_numbers: np.ndarray  # line/row number of every row of the file's table
-    rows: np.ndarray  # this tag's rows of that table
+    rows: Rows  # this tag's rows of that table
     t_ns: np.ndarray
     nonexistent: np.ndarray | None  # None: no stamp of the file fell into a spring-forward gap
     values: np.ndarray
@@ -58,7 +58,7 @@ class Chunk:
 
     def number(self, i: int) -> int:
         """The line/row number of this chunk's sample ``i`` (looked up only for messages)."""
-        return int(self.table_numbers[self.rows[i]])
+        return int(self.table_numbers[self.rows][i])
 
 
 @dataclass(frozen=True)
@@ -86,39 +86,35 @@ def ns_to_datetime(ns: int) -> datetime:
 
 
 # -- reading -------------------------------------------------------------------------------
-def read_files(spec: DataSpec, vocab: QualityVocab | None = None
-               ) -> tuple[dict[str, list[Chunk]], tuple[dict, ...], dict[int, RawTable]]:
-    """Every file's rows of every wanted tag, stamped; and the sources read."""
-    vocab = vocab if vocab is not None else QualityVocab()
+def read_files(spec: DataSpec, vocab: QualityVocab, hasher: Executor
+               ) -> tuple[dict[str, list[Chunk]], list[Future], dict[int, RawTable]]:
+    """Every file's rows of every wanted tag, stamped; and each file's SHA-256 digest, being
+    computed on ``hasher`` (started after the file's parse, which it would only slow down)."""
     wanted: dict[str, str | None] = {}
     for tg in spec.tags:
         wanted.setdefault(tg.tag, tg.quality_column)
     text_time = spec.time.format in ("iso", "local")
     chunks: dict[str, list[Chunk]] = {}
     tables: dict[int, RawTable] = {}
-    digests = []
-    # each file is hashed on a second thread (hashlib releases the GIL) while the main one
-    # stamps and sorts its rows; started after the parse, which it would only slow down
-    with ThreadPoolExecutor(max_workers=1) as hasher:
-        _read_each(spec, vocab, wanted, text_time, chunks, tables,
-                   after_read=lambda path: digests.append(hasher.submit(file_sha256, path)))
-        sources = [{"path": str(path), "sha256": d.result()} for path, d in zip(spec.files, digests)]
-    return chunks, tuple(sources), tables
+    digests: list[Future] = []
+    _read_each(spec, vocab, wanted, text_time, chunks, tables,
+               after_parse=lambda path: digests.append(hasher.submit(file_sha256, path)))
+    return chunks, digests, tables
 
 
 def _read_each(spec: DataSpec, vocab: QualityVocab, wanted: dict, text_time: bool,
-               chunks: dict[str, list[Chunk]], tables: dict[int, RawTable], after_read) -> None:
+               chunks: dict[str, list[Chunk]], tables: dict[int, RawTable], after_parse) -> None:
     """Read every file into ``tables`` and its stamped rows of each wanted tag into ``chunks``."""
     static_offset = 0
     for k, path in enumerate(spec.files):
-        table = read_table(path, spec.read, spec.time.column, wanted, text_time, vocab)
-        after_read(path)
+        table = read_table(path, spec.read, spec.time.column, wanted, text_time, vocab,
+                           after_parse=lambda: after_parse(path))
         tables[k] = table
         if not table.tags:
             continue
         if len(table.tags) == 1 or spec.read.layout == "wide":
             used = next(iter(table.tags.values())).rows if spec.read.layout == "long" else \
-                np.arange(len(table.numbers))
+                slice(0, len(table.numbers), 1)
         else:
             flag = np.zeros(len(table.numbers), bool)
             for tr in table.tags.values():
@@ -130,7 +126,7 @@ def _read_each(spec: DataSpec, vocab: QualityVocab, wanted: dict, text_time: boo
             static_offset += n
             gap_all = np.zeros(n, bool)
         else:
-            every = used.size == len(table.numbers)
+            every = row_count(used) == len(table.numbers)
             groups = None
             if spec.read.layout == "long" and spec.time.format not in ("iso", "epoch_s"):
                 groups = np.full(len(table.numbers), -1, np.int64)  # wall clocks resolve per tag
@@ -149,8 +145,9 @@ def _read_each(spec: DataSpec, vocab: QualityVocab, wanted: dict, text_time: boo
                 gap_all[used] = stamps.nonexistent
         any_gap = bool(gap_all.any())
         for name, tr in table.tags.items():
-            chunks.setdefault(name, []).append(Chunk(k, table.word, table.numbers, tr.rows, t_all[tr.rows],
-                                                     gap_all[tr.rows] if any_gap else None, tr.values, tr.quality))
+            chunks.setdefault(name, []).append(Chunk(k, table.word, table.numbers, tr.rows, take_rows(t_all, tr.rows),
+                                                     take_rows(gap_all, tr.rows) if any_gap else None, tr.values,
+                                                     tr.quality))
 
 
 def missing_tag_error(tg: TagSpec, spec: DataSpec, tables: dict[int, RawTable]) -> DataError:
@@ -408,8 +405,15 @@ def _check_select(spec: DataSpec, tags: list[TagData], raw_spans: list[tuple[int
 
 
 def assemble(spec: DataSpec) -> Assembly:
+    with ThreadPoolExecutor(max_workers=1) as hasher:
+        # the files are hashed on a second thread (hashlib releases the GIL) while this one
+        # reads, stamps and judges their samples; the digests are collected at the end
+        return _assemble(spec, hasher)
+
+
+def _assemble(spec: DataSpec, hasher: Executor) -> Assembly:
     vocab = QualityVocab()
-    chunks, sources, tables = read_files(spec, vocab)
+    chunks, digests, tables = read_files(spec, vocab, hasher)
     convs = {tg.symbol: tag_conversion(tg.units, tg.model_units, tag=tg.tag, where=tg.where) for tg in spec.tags}
     tags: list[TagData] = []
     raw_spans = []
@@ -439,39 +443,47 @@ def assemble(spec: DataSpec) -> Assembly:
                 where=td.spec.where_tag, hint="check good_quality, the valid range and the units of that tag"))
     segments: list[tuple[int, int]] = []
     notes: list[str] = []
-    record = None
     if not problems and start is not None:
-        breaks = []
-        for td in tags:
-            if td.spec.role == ROLE_INPUT:
-                breaks += gaps_of(td.t_ns[td.use], gap_limit(td.spec, spec))
-        breaks += [(lo, hi) for lo, hi in spec.exclude if hi > start and lo < end]
-        sel = sorted(spec.select)
-        breaks += [(sel[i][1], sel[i + 1][0]) for i in range(len(sel) - 1) if sel[i + 1][0] > sel[i][1]]
-        outs = [td for td in tags if td.spec.role != ROLE_INPUT]
-        for lo, hi in segment_spans(start, end, breaks):
-            lacking = [td.spec.symbol for td in outs if not _valid_within(td, lo, hi)]
-            if lacking:
-                notes.append(f"segment {iso(lo)} .. {iso(hi)} dropped: no valid observation of "
-                             f"{', '.join(lacking)}")
-            else:
-                segments.append((lo, hi))
+        segments, notes = _segments(spec, tags, start, end)
         if not segments:
             problems.append(DataError("no segment holds a valid observation of every output",
                                       where=spec.where, hint="widen the windows or raise max_gap"))
-        else:
-            record = _record(spec, tags, start, segments, sources, notes)
+    tag_reports = tuple(_tag_report(td, spec, start, end) for td in tags)
+    sources = tuple({"path": str(path), "sha256": d.result()} for path, d in zip(spec.files, digests))
+    record = _record(spec, tags, start, segments, sources, notes) if segments else None
     seg_reports = tuple(
         SegmentReport(i + 1, iso(lo), iso(hi), (hi - lo) / 1e9,
                       sum(_valid_within(td, lo, hi) for td in tags if td.spec.role != ROLE_INPUT))
         for i, (lo, hi) in enumerate(segments))
     holdout = spec.holdout.isoformat() if isinstance(spec.holdout, datetime) else spec.holdout
     report = DataReport(
-        experiment=spec.name, sources=sources, tags=tuple(_tag_report(td, spec, start, end) for td in tags),
+        experiment=spec.name, sources=sources, tags=tag_reports,
         start_utc=iso(start), end_utc=iso(end), segments=seg_reports,
         select=tuple((iso(a), iso(b)) for a, b in spec.select), exclude=tuple((iso(a), iso(b)) for a, b in spec.exclude),
         holdout=holdout, problems=tuple(p.render() for p in problems), notes=tuple(notes))
     return Assembly(spec, record, report, tuple(problems))
+
+
+def _segments(spec: DataSpec, tags: list[TagData], start: int, end: int
+              ) -> tuple[list[tuple[int, int]], list[str]]:
+    """The spans between input gaps, excluded windows and gaps between selected windows that
+    hold a valid observation of every output; a note for each span dropped."""
+    breaks = []
+    for td in tags:
+        if td.spec.role == ROLE_INPUT:
+            breaks += gaps_of(td.t_ns[td.use], gap_limit(td.spec, spec))
+    breaks += [(lo, hi) for lo, hi in spec.exclude if hi > start and lo < end]
+    sel = sorted(spec.select)
+    breaks += [(sel[i][1], sel[i + 1][0]) for i in range(len(sel) - 1) if sel[i + 1][0] > sel[i][1]]
+    outs = [td for td in tags if td.spec.role != ROLE_INPUT]
+    segments, notes = [], []
+    for lo, hi in segment_spans(start, end, breaks):
+        lacking = [td.spec.symbol for td in outs if not _valid_within(td, lo, hi)]
+        if lacking:
+            notes.append(f"segment {iso(lo)} .. {iso(hi)} dropped: no valid observation of {', '.join(lacking)}")
+        else:
+            segments.append((lo, hi))
+    return segments, notes
 
 
 def _record(spec: DataSpec, tags: list[TagData], start: int, segments, sources, notes) -> Record:

@@ -91,6 +91,67 @@ def text_codes(series: pd.Series, runs: bool = True) -> tuple[np.ndarray, pd.Ser
     return codes, pd.Series(uniq)
 
 
+_MAX_PERIOD = 10_000
+
+
+def periodic_texts(series: pd.Series) -> list[str] | None:
+    """The texts of one period when an arrow text column without nulls cycles through ``p``
+    distinct texts in one order (row ``r`` holds the text of row ``r % p``; the last cycle may
+    be cut short), as the tag column of a long export does when every stamp lists every tag
+    in the same order; None otherwise.  Checked on arrow's buffers, chunk by chunk: every
+    text's length and bytes against the period's, with no hashing and no copy."""
+    arr = arrow_text(series)
+    if arr is None or arr.null_count or len(arr) < 2:
+        return None
+    head = arr[:_MAX_PERIOD + 1].to_pylist()
+    try:
+        p = head.index(head[0], 1)
+    except ValueError:
+        return None
+    period = head[:p]
+    if len(set(period)) != p or len(arr) < 2 * p:
+        return None
+    encoded = [t.encode("utf-8") for t in period]
+    lengths = np.array([len(e) for e in encoded], np.int64)
+    if not lengths.all():
+        return None
+    starts = np.concatenate([[0], np.cumsum(lengths)])
+    pattern = np.frombuffer(b"".join(encoded), np.uint8)
+    row = 0
+    for chunk in getattr(arr, "chunks", [arr]):
+        if len(chunk) and not _chunk_follows(chunk, row % p, lengths, pattern, starts):
+            return None
+        row += len(chunk)
+    return period
+
+
+def _chunk_follows(chunk, phase: int, lengths: np.ndarray, pattern: np.ndarray, starts: np.ndarray) -> bool:
+    """Whether an arrow string chunk holds the period's texts in turn, starting at ``phase``."""
+    import pyarrow as pa
+
+    if pa.types.is_large_string(chunk.type):
+        width = 8
+    elif pa.types.is_string(chunk.type):
+        width = 4
+    else:
+        return False
+    m, p = len(chunk), lengths.size
+    _, off_buf, data_buf = chunk.buffers()
+    offsets = np.frombuffer(off_buf, np.int64 if width == 8 else np.int32, m + 1, chunk.offset * width)
+    if not _cycles(np.diff(offsets), np.roll(lengths, -phase)):
+        return False
+    data = np.frombuffer(data_buf, np.uint8)[offsets[0]:offsets[-1]]
+    return _cycles(data, np.roll(pattern, -int(starts[phase])))
+
+
+def _cycles(x: np.ndarray, period: np.ndarray) -> bool:
+    """Whether ``x`` is ``period`` repeated (the last repeat may be cut short)."""
+    k = x.size // period.size
+    whole = k * period.size
+    return bool((x[:whole].reshape(k, period.size) == period).all() and
+                np.array_equal(x[whole:], period[:x.size - whole]))
+
+
 def regex_matches(texts: pd.Series, pattern: str) -> np.ndarray:
     """Whether each text contains a match of ``pattern``: in pyarrow's RE2 engine when the
     column is arrow-backed (much faster), else in Python's."""

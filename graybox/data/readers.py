@@ -21,6 +21,11 @@ from graybox.data.config import ReadOptions
 from graybox.errors import DataError
 
 
+# a tag's rows of its table: positions in recorded order, or a slice (start, stop and step all
+# given) when they are evenly spaced, as in a wide table or a long one that cycles through its tags
+Rows = np.ndarray | slice
+
+
 @dataclass(frozen=True)
 class TagRaw:
     """One tag's rows from one file, in recorded order."""
@@ -28,7 +33,25 @@ class TagRaw:
     tag: str
     values: np.ndarray  # float, NaN = no value in that cell
     quality: np.ndarray | None  # quality code per row (into the experiment's QualityVocab), or None
-    rows: np.ndarray  # positions into the table's time column
+    rows: Rows  # positions into the table's time column
+
+
+def take_rows(arr: np.ndarray, rows: Rows) -> np.ndarray:
+    """``arr`` at ``rows``, as an array of its own (a slice is copied, not viewed)."""
+    return arr[rows] if isinstance(rows, np.ndarray) else arr[rows].copy()
+
+
+def row_at(rows: Rows, i: int) -> int:
+    """The position of the ``i``-th of ``rows``."""
+    return int(rows[i]) if isinstance(rows, np.ndarray) else range(rows.start, rows.stop, rows.step)[i]
+
+
+def row_positions(rows: Rows) -> np.ndarray:
+    return rows if isinstance(rows, np.ndarray) else np.arange(rows.start, rows.stop, rows.step)
+
+
+def row_count(rows: Rows) -> int:
+    return rows.size if isinstance(rows, np.ndarray) else len(range(rows.start, rows.stop, rows.step))
 
 
 @dataclass(frozen=True)
@@ -62,10 +85,11 @@ def file_format(path: Path, opts: ReadOptions) -> str:
 
 
 def read_table(path: Path, opts: ReadOptions, time_column: str | None, wanted: dict[str, str | None],
-               text_time: bool, vocab: QualityVocab | None = None) -> RawTable:
+               text_time: bool, vocab: QualityVocab | None = None, after_parse=None) -> RawTable:
     """Read one file.  ``wanted`` maps each tag the experiment needs to its quality column
     (wide layout) or None; tags absent from this file are simply not in the result (several
-    files may feed one experiment).  ``text_time``: keep the time column as text."""
+    files may feed one experiment).  ``text_time``: keep the time column as text.
+    ``after_parse()`` is called once the file's text has been parsed into columns."""
     fmt = file_format(path, opts)
     if fmt == "csv":
         frame, word, numbers, header = _csv_frame(path, opts, time_column, wanted, text_time)
@@ -73,6 +97,8 @@ def read_table(path: Path, opts: ReadOptions, time_column: str | None, wanted: d
         frame, word, numbers, header = _parquet_frame(path, opts, time_column, wanted)
     else:
         frame, word, numbers, header = _excel_frame(path, opts, time_column, wanted)
+    if after_parse is not None:
+        after_parse()
     return _to_raw(path, frame, word, numbers, opts, time_column, wanted, header, vocab or QualityVocab())
 
 
@@ -282,31 +308,38 @@ def _tag_codes(tag_col: pd.Series, wanted) -> tuple[np.ndarray, list[str]]:
     return codes, [str(n).strip() for n in names]
 
 
-def _coded_tags(tag_col: pd.Series, wanted) -> tuple[np.ndarray, list[str]]:
-    """Each row's tag as a code into the file's (stripped) tag names."""
+def _tag_groups(tag_col: pd.Series, wanted) -> tuple[list[Rows], list[str]]:
+    """The file's (stripped) tag names and each one's rows in recorded order."""
+    from graybox.data.columns import periodic_texts
+
     if isinstance(tag_col.dtype, pd.CategoricalDtype):
-        return np.asarray(tag_col.cat.codes), [str(n).strip() for n in tag_col.cat.categories]
+        codes, names = np.asarray(tag_col.cat.codes), [str(n).strip() for n in tag_col.cat.categories]
+        return _grouped(codes, len(names)), names
     if not pd.api.types.is_string_dtype(tag_col.dtype) or tag_col.dtype == object:
         tag_col = tag_col.astype("str")
-    return _tag_codes(tag_col, wanted)
+    period = periodic_texts(tag_col)
+    if period is not None:  # every stamp lists every tag in one order: no lookup, no sort
+        n, p = len(tag_col), len(period)
+        return [slice(j, n, p) for j in range(p)], [t.strip() for t in period]
+    codes, names = _tag_codes(tag_col, wanted)
+    return _grouped(codes, len(names)), names
 
 
-def _grouped(codes: np.ndarray, n_names: int) -> tuple[np.ndarray, np.ndarray]:
-    """Row positions grouped by tag code, each group in recorded order (uncoded rows, -1,
-    first), and where each group starts: code ``k``'s rows are ``order[bounds[k]:bounds[k + 1]]``."""
+def _grouped(codes: np.ndarray, n_names: int) -> list[Rows]:
+    """Each code's rows in recorded order (rows with code -1, not wanted, are left out)."""
     periodic = _periodic(codes, n_names)
     if periodic is not None:
         return periodic
     small = codes.astype(np.int16) if n_names < 32000 and codes.itemsize > 2 else codes  # radix-sorted
     order = np.argsort(small, kind="stable")
     bounds = np.cumsum(np.bincount(small.astype(np.intp) + 1, minlength=n_names + 1))
-    return order, bounds
+    return [order[bounds[k]:bounds[k + 1]] for k in range(n_names)]
 
 
-def _periodic(codes: np.ndarray, n_names: int) -> tuple[np.ndarray, np.ndarray] | None:
-    """:func:`_grouped` without a sort for the common export sorted by time in which every
-    stamp lists every tag in the same order: the rows repeat with period ``n_names``, so code
-    ``k``'s rows are every ``n_names``-th from its place in the first period.  None otherwise."""
+def _periodic(codes: np.ndarray, n_names: int) -> list[slice] | None:
+    """:func:`_grouped` without a sort when the codes cycle through every name in one order
+    (row ``r`` holds the code of row ``r % n_names``): code ``k``'s rows are every
+    ``n_names``-th from its place in the first cycle.  None otherwise."""
     n = codes.size
     if n_names < 2 or n % n_names or n < 4 * n_names:
         return None
@@ -315,10 +348,8 @@ def _periodic(codes: np.ndarray, n_names: int) -> tuple[np.ndarray, np.ndarray] 
         return None
     if not np.array_equal(codes.reshape(-1, n_names), np.broadcast_to(first, (n // n_names, n_names))):
         return None
-    place = np.argsort(first)  # place[k]: where code k sits in each period
-    per = n // n_names
-    order = (place[:, None] + n_names * np.arange(per)[None, :]).ravel()
-    return order, np.arange(n_names + 1) * per
+    place = np.argsort(first)  # place[k]: where code k sits in each cycle
+    return [slice(int(place[k]), n, n_names) for k in range(n_names)]
 
 
 def _to_raw(path: Path, frame: pd.DataFrame, word: str, numbers: np.ndarray, opts: ReadOptions,
@@ -343,31 +374,29 @@ def _to_raw(path: Path, frame: pd.DataFrame, word: str, numbers: np.ndarray, opt
             if qcol and qcol not in frame.columns:
                 raise DataError(f"no quality column '{qcol}' for tag '{tag}'", where=str(path),
                                 hint="check the tag's quality_column")
-            tags[tag] = TagRaw(tag, values, quality, np.arange(len(frame)))
+            tags[tag] = TagRaw(tag, values, quality, slice(0, len(frame), 1))
         return RawTable(path, word, numbers, time, tags, present, time_column)
     with ThreadPoolExecutor(max_workers=1) as helper:
         # the quality flags are coded on a second thread (pyarrow releases the GIL) while this
-        # one codes and groups the tags; nothing else touches the vocabulary meanwhile
+        # one groups the rows by tag; nothing else touches the vocabulary meanwhile
         quality_job = helper.submit(vocab.codes_of, frame[opts.quality_column]) if opts.quality_column else None
-        codes, names = _coded_tags(frame[opts.tag_column], wanted)
-        order, bounds = _grouped(codes, len(names))
+        groups, names = _tag_groups(frame[opts.tag_column], wanted)
         all_quality = quality_job.result() if quality_job is not None else None
     value_col = frame[opts.value_column]
     numeric = pd.api.types.is_numeric_dtype(value_col.dtype) and not pd.api.types.is_bool_dtype(value_col.dtype)
     all_values = value_col.to_numpy(dtype=float, na_value=np.nan) if numeric else None
-    for k, name in enumerate(names):
+    for rows, name in zip(groups, names):
         if name not in wanted:
             continue
-        rows = order[bounds[k]:bounds[k + 1]]
         if all_values is not None:
-            values = all_values[rows]
+            values = take_rows(all_values, rows)
         else:  # text in the value column: parse this tag's cells only (other tags may hold text)
             col = value_col.iloc[rows].reset_index(drop=True)
-            values = to_numbers(col, opts.decimal, lambda i, r=rows: locate(opts.value_column)(int(r[i])))
-        quality = all_quality[rows] if all_quality is not None else None
+            values = to_numbers(col, opts.decimal, lambda i, r=rows: locate(opts.value_column)(row_at(r, i)))
+        quality = take_rows(all_quality, rows) if all_quality is not None else None
         if name in tags:  # the same tag written two ways (e.g. with trailing blanks): merge in order
             prev = tags[name]
-            merged = np.concatenate([prev.rows, rows])
+            merged = np.concatenate([row_positions(prev.rows), row_positions(rows)])
             o = np.argsort(merged, kind="stable")
             values = np.concatenate([prev.values, values])[o]
             quality = None if quality is None else np.concatenate([prev.quality, quality])[o]

@@ -4,6 +4,7 @@ through the wide reader."""
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
 
 from graybox.data import SymbolInfo
 from graybox.data.columns import text_codes
@@ -131,14 +132,17 @@ def test_chunked_arrow_columns_code_like_one_chunk():
     assert _take_sorted(chunked, idx).to_pylist() == chunked.combine_chunks().take(pa.array(idx)).to_pylist()
 
 
+def _groups_by_sort(codes, m):
+    """Reference grouping: numpy's stable argsort (each code's rows in recorded order)."""
+    order = np.argsort(codes, kind="stable")
+    bounds = np.cumsum(np.bincount(codes + 1, minlength=m + 1))
+    return [order[bounds[k]:bounds[k + 1]] for k in range(m)]
+
+
 def test_periodic_tag_grouping_equals_the_sort():
     # a long export sorted by time with every tag at every stamp groups without a sort; the
     # reference is numpy's stable argsort (the general path), on periodic and broken patterns
-    from graybox.data.readers import _grouped, _periodic
-
-    def by_sort(codes, m):
-        order = np.argsort(codes, kind="stable")
-        return order, np.cumsum(np.bincount(codes + 1, minlength=m + 1))
+    from graybox.data.readers import _grouped, _periodic, row_positions
 
     periodic = np.tile(np.array([2, 0, 3, 1], np.int32), 1000)
     assert _periodic(periodic, 4) is not None
@@ -147,7 +151,71 @@ def test_periodic_tag_grouping_equals_the_sort():
     missing = periodic.copy()
     missing[5] = -1  # a row of an unwanted tag
     for codes in (periodic, broken, missing, periodic[:-1]):
-        got, want = _grouped(codes, 4), by_sort(codes, 4)
-        np.testing.assert_array_equal(got[0], want[0])
-        np.testing.assert_array_equal(got[1], want[1])
+        got, want = _grouped(codes, 4), _groups_by_sort(codes, 4)
+        assert len(got) == len(want) == 4
+        for g, w in zip(got, want):
+            np.testing.assert_array_equal(row_positions(g), w)
     assert _periodic(broken, 4) is None and _periodic(missing, 4) is None
+
+
+def _chunked_text(texts, cuts, large=True):
+    pieces = np.split(np.asarray(texts, dtype=object), cuts)
+    kind = pa.large_string() if large else pa.string()
+    return pd.Series(pd.arrays.ArrowStringArray(pa.chunked_array([pa.array(list(p), kind) for p in pieces])))
+
+
+def test_periodic_texts_on_chunked_buffers():
+    # the buffer check against pyarrow's dictionary encoding (the general path): row r must hold
+    # the text of row r % p; chunk cuts fall mid-cycle, both arrow offset widths, multi-byte UTF-8
+    from graybox.data.columns import periodic_texts
+
+    period = ["TI_101", "FI_2", "PI_3003", "Zürich_4", "TI_101 "]
+    texts = period * 2000 + period[:3]  # the last cycle cut short
+    for large in (True, False):
+        col = _chunked_text(texts, [7, 4001, 4002, 9999], large)
+        assert col.array._pa_array.num_chunks == 5
+        assert periodic_texts(col) == period
+        enc = pa.chunked_array(col.array._pa_array).combine_chunks().dictionary_encode()
+        codes = enc.indices.to_numpy()
+        np.testing.assert_array_equal(codes, np.arange(len(texts)) % len(period))  # what the check asserts
+    # one changed byte, one changed length, a swapped pair, a null: not periodic
+    for k, bad in ((6000, "TI_102"), (11, "FI_22"), (None, None)):  # same length; longer; swap
+        wrong = list(texts)
+        if k is None:
+            wrong[20], wrong[21] = wrong[21], wrong[20]
+        else:
+            wrong[k] = bad
+        assert periodic_texts(_chunked_text(wrong, [7, 4001])) is None
+    with_null = pd.Series(pd.arrays.ArrowStringArray(pa.chunked_array([pa.array(texts[:-1] + [None],
+                                                                                 pa.large_string())])))
+    assert periodic_texts(with_null) is None
+    assert periodic_texts(_chunked_text(["A"] * 50, [20])) == ["A"]  # one export per tag
+
+
+def test_periodic_long_file_reads_like_a_shuffled_one(tmp_path):
+    # the same samples in a cycling long table (fast path) and with its rows shuffled within
+    # each stamp (general path) give identical tag data; reference: the general path itself
+    from graybox.data.readers import read_table, row_positions
+    from graybox.data.config import ReadOptions
+
+    rng = np.random.default_rng(3)
+    n, tags = 3000, ["A_1", "B_22", "C_333"]
+    stamps = np.repeat(pd.date_range("2026-03-01", periods=n, freq="10s", tz="UTC").strftime("%Y-%m-%dT%H:%M:%SZ"), 3)
+    frame = pd.DataFrame({"time": stamps, "tag": tags * n, "value": rng.normal(size=3 * n).round(4),
+                          "quality": rng.choice(["Good", "Bad"], 3 * n, p=[0.95, 0.05])})
+    cyc, shuf = tmp_path / "cyc.csv", tmp_path / "shuf.csv"
+    frame.to_csv(cyc, index=False)
+    perm = np.concatenate([3 * i + rng.permutation(3) for i in range(n)])
+    frame.iloc[perm].to_csv(shuf, index=False)
+    opts = ReadOptions(file_format=None, layout="long", delimiter=",", decimal=".", encoding="utf-8", header_row=1,
+                       skip_after_header=0, no_value=(), sheet=None, tag_column="tag", value_column="value",
+                       quality_column="quality")
+    wanted = dict.fromkeys(tags)
+    a = read_table(cyc, opts, "time", wanted, True)
+    b = read_table(shuf, opts, "time", wanted, True)
+    assert isinstance(a.tags["A_1"].rows, slice) and isinstance(b.tags["A_1"].rows, np.ndarray)
+    for tag in tags:
+        ra, rb = a.tags[tag], b.tags[tag]
+        np.testing.assert_array_equal(ra.values, rb.values)
+        np.testing.assert_array_equal(ra.quality, rb.quality)
+        np.testing.assert_array_equal(a.time.to_numpy()[row_positions(ra.rows)], b.time.to_numpy()[rb.rows])
