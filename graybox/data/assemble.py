@@ -486,13 +486,23 @@ def _segments(spec: DataSpec, tags: list[TagData], start: int, end: int
     return segments, notes
 
 
+def _seconds_since(t_ns: np.ndarray, start: int) -> np.ndarray:
+    """``(t_ns - start) / 1e9`` into one new array."""
+    out = np.empty(t_ns.size)
+    np.subtract(t_ns, start, out=out, casting="unsafe")
+    out /= 1e9
+    return out
+
+
 def _record(spec: DataSpec, tags: list[TagData], start: int, segments, sources, notes) -> Record:
     inputs, outputs = {}, {}
     for td in tags:
-        t = (td.t_ns - start) / 1e9
+        t = _seconds_since(td.t_ns, start)
         name, units = td.spec.symbol, td.spec.model_units
-        if td.spec.role == ROLE_INPUT:
-            inputs[name] = InputSeries(name, t, np.where(td.use, td.values, np.nan), hold=td.spec.hold, units=units)
+        if td.spec.role == ROLE_INPUT:  # masked input samples are left out: the input holds across them
+            every = bool(td.use.all())
+            inputs[name] = InputSeries(name, t if every else t[td.use], td.values if every else td.values[td.use],
+                                       hold=td.spec.hold, units=units)
         else:
             outputs[name] = OutputSeries(name, t, td.values, mask=td.use, units=units)
     segs = tuple(Segment((lo - start) / 1e9, (hi - start) / 1e9) for lo, hi in segments)

@@ -105,17 +105,24 @@ def stuck(t_ns: np.ndarray, values: np.ndarray, usable: np.ndarray, deadband: fl
     a run, however long the plant sat steady (half the deadband leaves room for stored
     values rounded at the deadband's edge)."""
     out = np.zeros(values.size, bool)
-    idx = np.flatnonzero(usable)
-    if idx.size < min_samples:
+    every = bool(usable.all())
+    v = values if every else values[usable]
+    if v.size < min_samples:
         return out
     deadband = 0.5 * deadband
-    v, t = values[idx], t_ns[idx]
     # candidate stretches: every step within 2*deadband (necessary for a run)
-    close = np.abs(np.diff(v)) <= 2.0 * deadband
-    edges = np.diff(np.concatenate([[0], close.astype(np.int8), [0]]))
-    starts, ends = np.flatnonzero(edges == 1), np.flatnonzero(edges == -1)  # ends exclusive, in steps
+    step = np.diff(v)
+    close = np.abs(step, out=step) <= 2.0 * deadband
+    edges = np.diff(close, prepend=False, append=False).nonzero()[0]  # run starts and (exclusive) ends, alternating
+    starts, ends = edges[::2], edges[1::2]  # in steps: a run of steps a .. b-1 joins samples a .. b
+    few = ends - starts + 1 >= min_samples
+    if not few.any():
+        return out
+    idx = np.arange(values.size) if every else np.flatnonzero(usable)
+    t = t_ns if every else t_ns[idx]
     min_ns = min_duration_s * 1e9
-    long_enough = (ends - starts + 1 >= min_samples) & (t[ends] - t[starts] >= min_ns)
+    starts, ends = starts[few], ends[few]
+    long_enough = t[ends] - t[starts] >= min_ns
     for a, b in zip(starts[long_enough], ends[long_enough]):  # samples a .. b (inclusive)
         if deadband == 0.0:
             _mark(out, idx, t, a, b, min_samples, min_ns)

@@ -37,7 +37,8 @@ class TagRaw:
 
 
 def take_rows(arr: np.ndarray, rows: Rows) -> np.ndarray:
-    """``arr`` at ``rows``, as an array of its own (a slice is copied, not viewed)."""
+    """``arr`` at ``rows``, as a contiguous array of its own (a slice is copied, not viewed:
+    every later pass over a strided view would touch a cache line per sample)."""
     return arr[rows] if isinstance(rows, np.ndarray) else arr[rows].copy()
 
 
@@ -68,9 +69,20 @@ class RawTable:
         return f"{self.path} {self.word} {int(self.numbers[i])} column '{column}'"
 
 
+_HASH_BLOCK = 1 << 22
+
+
 def file_sha256(path: Path) -> str:
-    with open(path, "rb") as fh:  # read-only
-        return hashlib.file_digest(fh, "sha256").hexdigest()
+    """The file's SHA-256 digest, read in 4 MiB blocks: the digest runs on a second thread,
+    and every block hands Python's lock back and forth once (hashlib.file_digest's 256 KiB
+    blocks made the thread reading the samples wait for it hundreds of times a file)."""
+    h = hashlib.sha256()
+    buf = bytearray(_HASH_BLOCK)
+    view = memoryview(buf)
+    with open(path, "rb", buffering=0) as fh:  # read-only
+        while n := fh.readinto(buf):
+            h.update(view[:n])
+    return h.hexdigest()
 
 
 def file_format(path: Path, opts: ReadOptions) -> str:

@@ -41,7 +41,7 @@ def _check_times(name: str, t: np.ndarray) -> None:
         raise DataError(f"'{name}' has no samples")
     if not np.all(np.isfinite(t)):
         raise DataError(f"'{name}' has non-finite sample times")
-    if t.size > 1 and np.any(np.diff(t) <= 0):
+    if t.size > 1 and not np.all(t[1:] > t[:-1]):
         raise DataError(f"sample times of '{name}' must be strictly increasing")
 
 
@@ -67,8 +67,9 @@ class InputSeries:
         good = np.isfinite(v)
         if not good.any():
             raise DataError(f"input '{self.name}' has no valid sample", hint="check its quality flags and valid range")
-        object.__setattr__(self, "t", t[good])
-        object.__setattr__(self, "values", v[good])
+        every = bool(good.all())
+        object.__setattr__(self, "t", t if every else t[good])
+        object.__setattr__(self, "values", v if every else v[good])
 
     def at(self, times) -> np.ndarray:
         """Value at each time: held from the last sample at or before it, or linear between

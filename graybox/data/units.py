@@ -55,9 +55,11 @@ class Conversion:
     text: str
 
     def apply(self, raw: np.ndarray) -> np.ndarray:
-        if self.scale == 1.0 and self.offset == 0.0:
-            return np.asarray(raw, dtype=float)
-        return np.asarray(raw, dtype=float) * self.scale + self.offset
+        """``scale * raw + offset`` as a new array (also for the identity)."""
+        out = np.multiply(raw, self.scale, dtype=float)
+        if self.offset != 0.0:
+            out += self.offset
+        return out
 
     def apply_scalar(self, raw: float) -> float:
         return float(raw) * self.scale + self.offset

@@ -136,3 +136,22 @@ def test_quartiles_match_numpy_percentile():
     for x in (rng.integers(0, 10**12, 1001), np.full(7, 5, np.int64), np.array([3, 1]), np.array([9]),
               (rng.normal(10, 0.5, 10_000) * 1e9).astype(np.int64)):
         np.testing.assert_allclose(quartiles(x), np.percentile(x, [25, 50, 75]), rtol=1e-15, atol=0)
+
+
+def test_file_digest_in_blocks_equals_hashlib(tmp_path, monkeypatch):
+    # reference: SHA-256 as specified in FIPS 180-4 through Python's hashlib on the whole
+    # bytes; the known digest of "abc" is the standard's first example (value from memory)
+    import hashlib
+
+    from graybox.data import readers
+
+    abc = tmp_path / "abc.txt"
+    abc.write_bytes(b"abc")
+    assert readers.file_sha256(abc) == "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"
+    big = tmp_path / "big.bin"
+    big.write_bytes(np.random.default_rng(2).integers(0, 256, 100_003, dtype=np.uint8).tobytes())
+    monkeypatch.setattr(readers, "_HASH_BLOCK", 4096)  # many blocks and a short last one
+    assert readers.file_sha256(big) == hashlib.sha256(big.read_bytes()).hexdigest()
+    empty = tmp_path / "empty.bin"
+    empty.write_bytes(b"")
+    assert readers.file_sha256(empty) == hashlib.sha256(b"").hexdigest()

@@ -159,3 +159,39 @@ def test_quality_codes_and_configurable_good_values(tmp_path):
                                "good_quality": [192], "tags": {"T": "TI_101", "Q": "QI_7", "F": "FI_3"}})
     np.testing.assert_array_equal(rec.outputs["T"].mask, [True, False, True])
     assert rep.tag("T").masked == {REASON_QUALITY: 1}
+
+
+def _stuck_by_hand(t_ns, values, usable, deadband, min_s, min_samples=3):
+    """The stuck rule read literally, one sample at a time: over the usable samples in order,
+    a run grows while each sample lies within half the deadband of the run's first (equal to
+    it for a zero deadband); a run of at least ``min_samples`` lasting ``min_s`` is stuck."""
+    out = np.zeros(values.size, bool)
+    idx = [i for i in range(values.size) if usable[i]]
+    k = 0
+    while k < len(idx):
+        j = k
+        while j + 1 < len(idx) and abs(values[idx[j + 1]] - values[idx[k]]) <= 0.5 * deadband:
+            j += 1
+        if j - k + 1 >= min_samples and t_ns[idx[j]] - t_ns[idx[k]] >= min_s * 1e9:
+            out[idx[k:j + 1]] = True
+        k = j + 1
+    return out
+
+
+@pytest.mark.parametrize("deadband", [0.0, 0.2])
+@pytest.mark.parametrize("all_usable", [True, False])
+def test_stuck_rule_matches_its_literal_reading(deadband, all_usable):
+    # reference: the rule as documented, evaluated sample by sample (a plain Python loop)
+    from graybox.data.quality import stuck
+
+    rng = np.random.default_rng(11)
+    n = 4000
+    t = np.cumsum(rng.integers(20, 40, n)) * 10**9
+    v = np.round(rng.normal(0, 0.3, n), 1)  # rounded: many equal neighbours and near-equal runs
+    for a, b in ((100, 180), (900, 905), (2500, 2900)):
+        v[a:b] = v[a]
+    usable = np.ones(n, bool) if all_usable else rng.random(n) > 0.1
+    got = stuck(t, v, usable, deadband, min_duration_s=120.0)
+    want = _stuck_by_hand(t, v, usable, deadband, 120.0)
+    assert want.sum() > 0
+    np.testing.assert_array_equal(got, want)
