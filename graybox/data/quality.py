@@ -29,8 +29,11 @@ def bad_quality(codes: np.ndarray | None, texts: list[str], good: frozenset[str]
     bad); ``codes`` index the normalized flag ``texts``."""
     if codes is None:
         return None
-    is_good = np.array([t in good for t in texts] + [False], bool)
-    return ~is_good[codes]
+    good_codes = [k for k, t in enumerate(texts) if t in good]
+    if len(good_codes) == 1:  # the usual case: one flag text means good
+        return codes != good_codes[0]
+    is_bad = np.array([t not in good for t in texts] + [True], bool)
+    return is_bad[codes]
 
 
 def out_of_range(values: np.ndarray, valid: tuple[float, float] | None) -> np.ndarray:

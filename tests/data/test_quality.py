@@ -195,3 +195,14 @@ def test_stuck_rule_matches_its_literal_reading(deadband, all_usable):
     want = _stuck_by_hand(t, v, usable, deadband, 120.0)
     assert want.sum() > 0
     np.testing.assert_array_equal(got, want)
+
+
+@pytest.mark.parametrize("good", [frozenset({"good"}), frozenset({"good", "192"}), frozenset()])
+def test_bad_quality_flags_read_one_by_one(good):
+    # reference: each flag looked up by hand; code -1 (no flag) is bad, as a blank flag is
+    from graybox.data.quality import bad_quality
+
+    texts = ["good", "bad", "192", ""]
+    codes = np.random.default_rng(4).integers(-1, len(texts), 500).astype(np.int32)
+    want = np.array([c < 0 or texts[c] not in good for c in codes])
+    np.testing.assert_array_equal(bad_quality(codes, texts, good), want)
