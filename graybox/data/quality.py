@@ -62,6 +62,22 @@ def _half_medians(t_ns: np.ndarray, v: np.ndarray, half_s: float) -> tuple[np.nd
     return left.to_numpy(), right.to_numpy()[::-1]
 
 
+def _window_medians(t_ns: np.ndarray, v: np.ndarray, dev: np.ndarray, at: np.ndarray, window_s: float
+                    ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """At the samples ``at`` only: the median of ``dev`` over the centred window
+    ``[t - w/2, t + w/2]``, and the medians of ``v`` over ``[t - w/2, t)`` and
+    ``(t, t + w/2]`` (NaN where a side holds none), as the running medians give them."""
+    half = pd.Timedelta(seconds=window_s).value // 2
+    side = pd.Timedelta(seconds=window_s / 2.0).value
+    ta = t_ns[at]
+    lo, hi = np.searchsorted(t_ns, ta - half, "left"), np.searchsorted(t_ns, ta + half, "right")
+    lo_left, hi_right = np.searchsorted(t_ns, ta - side, "left"), np.searchsorted(t_ns, ta + side, "right")
+    mad = np.array([np.median(dev[a:b]) for a, b in zip(lo, hi)])
+    left = np.array([np.median(v[a:i]) if i > a else np.nan for a, i in zip(lo_left, at)])
+    right = np.array([np.median(v[i + 1:b]) if b > i + 1 else np.nan for i, b in zip(at, hi_right)])
+    return mad, left, right
+
+
 def spikes(t_ns: np.ndarray, values: np.ndarray, usable: np.ndarray, window_s: float, threshold: float,
            floor: float = 0.0) -> np.ndarray:
     """Samples further than ``threshold`` robust standard deviations from the running median
@@ -73,7 +89,12 @@ def spikes(t_ns: np.ndarray, values: np.ndarray, usable: np.ndarray, window_s: f
     The robust deviation is 1.4826 times the median absolute deviation from the running
     (centred) median, taken in the same window but never below the whole series' value (a
     window of a few dozen samples often underestimates it, which would judge plain noise)
-    nor below ``floor``.  Where it is zero (a flat signal) nothing is judged."""
+    nor below ``floor``.  Where it is zero (a flat signal) nothing is judged.
+
+    The running median is taken at every sample; the window's deviation and the half
+    windows' medians only where a sample is far enough from it to be judged at all (the
+    robust deviation is never below the whole series' value or ``floor``), unless those are
+    many."""
     out = np.zeros(values.size, bool)
     idx = np.flatnonzero(usable)
     if idx.size < 3:
@@ -81,18 +102,25 @@ def spikes(t_ns: np.ndarray, values: np.ndarray, usable: np.ndarray, window_s: f
     t, v = t_ns[idx], values[idx]
     s = pd.Series(v, index=pd.DatetimeIndex(t.view("M8[ns]")))
     win = pd.Timedelta(seconds=window_s)
-    med = s.rolling(win, center=True, min_periods=1, closed="both").median()
-    dev = (s - med).abs()
-    mad = dev.rolling(win, center=True, min_periods=1, closed="both").median().to_numpy()
-    overall = MAD_TO_SIGMA * float(np.median(dev.to_numpy()))
+    med = s.rolling(win, center=True, min_periods=1, closed="both").median().to_numpy()
+    dev = np.abs(v - med)
+    overall = MAD_TO_SIGMA * float(np.median(dev))
+    at = np.flatnonzero(dev > threshold * max(overall, floor))  # no other sample can be judged
+    if at.size == 0:
+        return out
+    if at.size > max(64, idx.size // 50):  # many: the running medians are cheaper than windows one by one
+        mad = pd.Series(dev, index=s.index).rolling(win, center=True, min_periods=1, closed="both").median()
+        left, right = _half_medians(t, v, window_s / 2.0)
+        at, mad, left, right = np.arange(idx.size), mad.to_numpy(), left, right
+    else:
+        mad, left, right = _window_medians(t, v, dev, at, window_s)
     scale = np.maximum(np.maximum(MAD_TO_SIGMA * mad, overall), floor)
-    left, right = _half_medians(t, v, window_s / 2.0)
     limit = threshold * scale
-    far_left = np.where(np.isnan(left), True, np.abs(v - left) > limit)
-    far_right = np.where(np.isnan(right), True, np.abs(v - right) > limit)
-    far = dev.to_numpy() > limit
-    hit = (scale > 0) & far & far_left & far_right
-    out[idx[hit]] = True
+    va = v[at]
+    far_left = np.where(np.isnan(left), True, np.abs(va - left) > limit)
+    far_right = np.where(np.isnan(right), True, np.abs(va - right) > limit)
+    hit = (scale > 0) & (dev[at] > limit) & far_left & far_right
+    out[idx[at[hit]]] = True
     return out
 
 

@@ -206,3 +206,51 @@ def test_bad_quality_flags_read_one_by_one(good):
     codes = np.random.default_rng(4).integers(-1, len(texts), 500).astype(np.int32)
     want = np.array([c < 0 or texts[c] not in good for c in codes])
     np.testing.assert_array_equal(bad_quality(codes, texts, good), want)
+
+
+def _spikes_by_running_medians(t_ns, values, usable, window_s, threshold, floor=0.0):
+    """Reference: the spike rule with every median taken by pandas' time-based running
+    median at every sample (pandas.Series.rolling(...).median())."""
+    from graybox.data.quality import MAD_TO_SIGMA
+
+    out = np.zeros(values.size, bool)
+    idx = np.flatnonzero(usable)
+    t, v = t_ns[idx], values[idx]
+    s = pd.Series(v, index=pd.DatetimeIndex(t.view("M8[ns]")))
+    win = pd.Timedelta(seconds=window_s)
+    med = s.rolling(win, center=True, min_periods=1, closed="both").median()
+    dev = (s - med).abs()
+    mad = dev.rolling(win, center=True, min_periods=1, closed="both").median().to_numpy()
+    overall = MAD_TO_SIGMA * float(np.median(dev.to_numpy()))
+    scale = np.maximum(np.maximum(MAD_TO_SIGMA * mad, overall), floor)
+    half = pd.Timedelta(seconds=window_s / 2.0)
+    left = s.rolling(half, closed="left").median().to_numpy()
+    rs = pd.Series(v[::-1], index=pd.DatetimeIndex((-t[::-1]).view("M8[ns]")))
+    right = rs.rolling(half, closed="left").median().to_numpy()[::-1]
+    limit = threshold * scale
+    far_left = np.where(np.isnan(left), True, np.abs(v - left) > limit)
+    far_right = np.where(np.isnan(right), True, np.abs(v - right) > limit)
+    out[idx[(scale > 0) & (dev.to_numpy() > limit) & far_left & far_right]] = True
+    return out
+
+
+@pytest.mark.parametrize("window_s,threshold,regular", [(600.0, 6.0, True), (90.0, 4.0, False),
+                                                        (600.0, 1.5, True), (61.0, 3.0, False)])
+def test_spike_windows_taken_where_needed_equal_running_medians(window_s, threshold, regular):
+    # reference: pandas' running medians at every sample (above); threshold 1.5 judges many
+    # samples and takes the running-median path, the others the window-by-window one
+    from graybox.data.quality import spikes
+
+    rng = np.random.default_rng(int(window_s) + int(threshold))
+    n = 6000
+    step = np.full(n, 10) if regular else rng.integers(1, 25, n)
+    t = np.cumsum(step).astype(np.int64) * 10**9
+    v = 20 + 0.2 * rng.standard_normal(n) + np.where(np.arange(n) > 3000, 5.0, 0.0)  # a step change
+    v[rng.choice(n, 25, replace=False)] += rng.choice([-1, 1], 25) * rng.uniform(3, 30, 25)  # spikes
+    v[4000:4004] = 60.0  # a short burst
+    usable = rng.random(n) > 0.05
+    for floor in (0.0, 0.5):
+        got = spikes(t, v, usable, window_s, threshold, floor)
+        want = _spikes_by_running_medians(t, v, usable, window_s, threshold, floor)
+        assert want.sum() > 0
+        np.testing.assert_array_equal(got, want)
