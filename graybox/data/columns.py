@@ -103,12 +103,12 @@ def periodic_texts(series: pd.Series) -> list[str] | None:
     arr = arrow_text(series)
     if arr is None or arr.null_count or len(arr) < 2:
         return None
-    head = arr[:_MAX_PERIOD + 1].to_pylist()
-    try:
-        p = head.index(head[0], 1)
-    except ValueError:
+    import pyarrow.compute as pc
+
+    p = pc.index(arr[:_MAX_PERIOD + 1], arr[0], start=1).as_py()  # where the first text comes back
+    if p <= 0:
         return None
-    period = head[:p]
+    period = arr[:p].to_pylist()
     if len(set(period)) != p or len(arr) < 2 * p:
         return None
     encoded = [t.encode("utf-8") for t in period]
