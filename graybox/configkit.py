@@ -208,7 +208,7 @@ def parse_duration(text: str | float | int, where: str) -> float:
         return float(text)
     if not isinstance(text, str):
         raise ConfigError(f"a duration must be a number of seconds or text like '15 min', got {text!r}", where=where)
-    from graybox.model.units import registry
+    from graybox.unitreg import registry
 
     ureg = registry()
     try:

@@ -26,6 +26,7 @@ import numpy as np
 import pint
 
 from graybox.errors import ConfigError
+from graybox.unitreg import registry as data_registry
 
 GAUGE_UNITS = {"psig": "psi", "barg": "bar", "kPag": "kPa", "MPag": "MPa", "mbarg": "mbar", "Pag": "Pa"}
 STANDARD_FLOW_UNITS = {
@@ -38,12 +39,6 @@ TEMPERATURE_READING = "reading"
 TEMPERATURE_DIFFERENCE = "difference"
 
 
-@lru_cache(maxsize=1)
-def data_registry() -> pint.UnitRegistry:
-    """The data layer's unit registry (offset units are never converted silently)."""
-    ureg = pint.UnitRegistry(autoconvert_offset_to_baseunit=False)
-    ureg.define("USgal = gallon")
-    return ureg
 
 
 @dataclass(frozen=True)

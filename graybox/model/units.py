@@ -21,21 +21,16 @@ Time in the model is in seconds: a state's rate must have the state's units per 
 from __future__ import annotations
 
 from dataclasses import dataclass
-from functools import lru_cache
 
 import pint
 
 from graybox.errors import ModelError
 from graybox.model.expr import BinOp, Call, Compare, IfElse, Logic, Neg, Node, Num, Sym, to_text
+from graybox.unitreg import registry
 
 _REL_TOL = 1e-12
 
 
-@lru_cache(maxsize=1)
-def registry() -> pint.UnitRegistry:
-    """The one unit registry of the model layer."""
-    ureg = pint.UnitRegistry(autoconvert_offset_to_baseunit=False)
-    return ureg
 
 
 @dataclass(frozen=True)

@@ -126,3 +126,15 @@ def test_unknown_unit_is_a_located_error():
 def test_identity_when_units_match():
     c = conv("W", "W")
     assert c.identity and c.text.startswith("none")
+
+
+def test_model_config_and_data_share_one_registry():
+    # one registry per process: quantities from the model checks and the data conversions
+    # combine (pint refuses quantities of two registries), and it is built once
+    from graybox.data.units import data_registry
+    from graybox.model.units import registry
+    from graybox.unitreg import registry as shared
+
+    assert registry() is data_registry() is shared()
+    q = registry().Quantity(2.0, "USgal/min") + data_registry().Quantity(1.0, "m**3/s")
+    assert q.to("m**3/s").magnitude == pytest.approx(1.0 + 2 * 3.785412e-3 / 60, rel=1e-6)  # SP 811 B.8 gallon
