@@ -33,7 +33,7 @@ import numpy as np
 from graybox.data.config import ROLE_INPUT, DataSpec, SymbolInfo, TagSpec, parse_data_table
 from graybox.data.quality import (REASON_NONEXISTENT, REASON_QUALITY, REASON_RANGE, REASON_SPIKE, REASON_STUCK,
                                   bad_quality, count_first_reasons, held_repeats, out_of_range, spikes, stuck)
-from graybox.data.readers import QualityVocab, RawTable, Rows, file_sha256, read_table, row_count, take_rows
+from graybox.data.readers import QualityVocab, RawTable, Rows, file_sha256, read_table, row_at, row_count, take_rows
 from graybox.data.record import InputSeries, OutputSeries, Record, Segment
 from graybox.data.report import DataReport, SegmentReport, TagReport
 from graybox.data.timestamps import NAT, Place, parse_stamps
@@ -58,7 +58,7 @@ class Chunk:
 
     def number(self, i: int) -> int:
         """The line/row number of this chunk's sample ``i`` (looked up only for messages)."""
-        return int(self.table_numbers[self.rows][i])
+        return int(self.table_numbers[row_at(self.rows, i)])
 
 
 @dataclass(frozen=True)

@@ -324,9 +324,9 @@ def _tag_groups(tag_col: pd.Series, wanted) -> tuple[list[Rows], list[str]]:
     """The file's (stripped) tag names and each one's rows in recorded order."""
     from graybox.data.columns import periodic_texts
 
-    if isinstance(tag_col.dtype, pd.CategoricalDtype):
+    if isinstance(tag_col.dtype, pd.CategoricalDtype):  # dictionary-encoded (Parquet): the cycle checked on codes
         codes, names = np.asarray(tag_col.cat.codes), [str(n).strip() for n in tag_col.cat.categories]
-        return _grouped(codes, len(names)), names
+        return _periodic(codes, len(names)) or _grouped(codes, len(names)), names
     if not pd.api.types.is_string_dtype(tag_col.dtype) or tag_col.dtype == object:
         tag_col = tag_col.astype("str")
     period = periodic_texts(tag_col)
@@ -339,9 +339,6 @@ def _tag_groups(tag_col: pd.Series, wanted) -> tuple[list[Rows], list[str]]:
 
 def _grouped(codes: np.ndarray, n_names: int) -> list[Rows]:
     """Each code's rows in recorded order (rows with code -1, not wanted, are left out)."""
-    periodic = _periodic(codes, n_names)
-    if periodic is not None:
-        return periodic
     small = codes.astype(np.int16) if n_names < 32000 and codes.itemsize > 2 else codes  # radix-sorted
     order = np.argsort(small, kind="stable")
     bounds = np.cumsum(np.bincount(small.astype(np.intp) + 1, minlength=n_names + 1))

@@ -26,7 +26,7 @@ import numpy as np
 import pint
 
 from graybox.errors import ConfigError
-from graybox.unitreg import registry as data_registry
+from graybox.unitreg import registry
 
 GAUGE_UNITS = {"psig": "psi", "barg": "bar", "kPag": "kPa", "MPag": "MPa", "mbarg": "mbar", "Pag": "Pa"}
 STANDARD_FLOW_UNITS = {
@@ -37,8 +37,6 @@ STANDARD_FLOW_UNITS = {
 PERCENT_UNITS = ("%", "percent", "pct")
 TEMPERATURE_READING = "reading"
 TEMPERATURE_DIFFERENCE = "difference"
-
-
 
 
 @dataclass(frozen=True)
@@ -85,7 +83,7 @@ class TagUnits:
 
 def quantity(text: str, what: str, where: str) -> pint.Quantity:
     """A pint quantity from text such as '101.325 kPa'; ConfigError when not understood."""
-    ureg = data_registry()
+    ureg = registry()
     try:
         q = ureg.Quantity(text)
     except Exception:  # noqa: BLE001 - pint raises many kinds; all mean "not understood"
@@ -95,7 +93,7 @@ def quantity(text: str, what: str, where: str) -> pint.Quantity:
 
 
 def parse_unit(text: str, where: str, whose: str) -> pint.Unit:
-    ureg = data_registry()
+    ureg = registry()
     raw = (text or "").strip() or "dimensionless"
     try:
         q = ureg.Quantity(1.0, raw)
@@ -115,7 +113,7 @@ def parse_unit(text: str, where: str, whose: str) -> pint.Unit:
 def _close_unit_names(raw: str) -> list[str]:
     import difflib
 
-    ureg = data_registry()
+    ureg = registry()
     names = [*GAUGE_UNITS, *STANDARD_FLOW_UNITS, "degC", "degF", "K", "psi", "bar", "kPa", "W", "kW", "kg/s",
              "kg/h", "m**3/h", "USgal/min", "lb/h", "Btu/h"]
     names += [n for n in dir(ureg) if len(n) <= 12][:4000]
@@ -123,18 +121,18 @@ def _close_unit_names(raw: str) -> list[str]:
 
 
 def _is_offset(unit: pint.Unit) -> bool:
-    return not data_registry().Quantity(1.0, unit)._is_multiplicative
+    return not registry().Quantity(1.0, unit)._is_multiplicative
 
 
 def _delta(unit: pint.Unit) -> pint.Unit:
     """The difference form of a unit: delta_degC for degC; other units unchanged."""
     if _is_offset(unit):
-        return data_registry().Unit(f"delta_{unit}")
+        return registry().Unit(f"delta_{unit}")
     return unit
 
 
 def _dimension_text(unit: pint.Unit) -> str:
-    dim = data_registry().Quantity(1.0, unit).dimensionality
+    dim = registry().Quantity(1.0, unit).dimensionality
     return str(dim) if str(dim) != "dimensionless" else "dimensionless"
 
 
@@ -156,7 +154,7 @@ def tag_conversion(spec: TagUnits, model_units: str, *, tag: str, where: str) ->
     exist (naming both units), and missing declarations (temperature kind, atmosphere,
     standard conditions, molar mass).  Remembered per declaration (pint's arithmetic costs
     about a millisecond a tag; a rerun, a batch or a window scan asks again with the same)."""
-    ureg = data_registry()
+    ureg = registry()
     model_u = parse_unit(model_units, where, "model")
     units_text = spec.units.strip()
     steps: list[str] = []
@@ -226,7 +224,7 @@ def tag_conversion(spec: TagUnits, model_units: str, *, tag: str, where: str) ->
 
 
 def _temperature_fn(spec: TagUnits, tag_u, model_u, tag: str, where: str):
-    ureg = data_registry()
+    ureg = registry()
     offset_involved = _is_offset(tag_u) or _is_offset(model_u)
     kind = spec.temperature
     if kind is None:
@@ -247,11 +245,11 @@ def _temperature_fn(spec: TagUnits, tag_u, model_u, tag: str, where: str):
 
 
 def _pressure_dim():
-    return data_registry().Quantity(1.0, "Pa").dimensionality
+    return registry().Quantity(1.0, "Pa").dimensionality
 
 
 def _gauge_fn(spec: TagUnits, tag_u, model_u, tag: str, where: str):
-    ureg = data_registry()
+    ureg = registry()
     if ureg.Quantity(1.0, tag_u).dimensionality != _pressure_dim():
         raise ConfigError(f"tag '{tag}' is declared a gauge pressure but {tag_u:~} is not a pressure", where=where)
     if ureg.Quantity(1.0, model_u).dimensionality != _pressure_dim():
@@ -272,7 +270,7 @@ def _gauge_fn(spec: TagUnits, tag_u, model_u, tag: str, where: str):
 
 
 def _standard_flow_fn(spec: TagUnits, tag_u, model_u, tag: str, where: str):
-    ureg = data_registry()
+    ureg = registry()
     vol_flow = ureg.Quantity(1.0, "m**3/s").dimensionality
     if ureg.Quantity(1.0, tag_u).dimensionality != vol_flow:
         raise ConfigError(f"tag '{tag}' is declared a standard volumetric flow but {tag_u:~} is not a volume "
@@ -316,7 +314,7 @@ def _standard_flow_fn(spec: TagUnits, tag_u, model_u, tag: str, where: str):
 
 def _temperature_quantity(text: str, where: str) -> pint.Quantity:
     """An absolute temperature from text like '15 degC', '60 degF' or '288.15 K', in K."""
-    ureg = data_registry()
+    ureg = registry()
     parts = text.split(None, 1)
     try:
         value = float(parts[0])

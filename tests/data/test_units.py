@@ -131,7 +131,7 @@ def test_identity_when_units_match():
 def test_model_config_and_data_share_one_registry():
     # one registry per process: quantities from the model checks and the data conversions
     # combine (pint refuses quantities of two registries), and it is built once
-    from graybox.data.units import data_registry
+    from graybox.data.units import registry as data_registry
     from graybox.model.units import registry
     from graybox.unitreg import registry as shared
 
