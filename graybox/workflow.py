@@ -61,7 +61,8 @@ def load_records(study: Study) -> tuple[list, dict, list]:
     records, reports, validation = [], {}, []
     for name, table in study.experiments.items():
         where = table.where()
-        rec, rep = load_experiment(table.data, name, symbols=symbols, base_dir=study.base_dir, where=where)
+        rec, rep = load_experiment(table.data, name, symbols=symbols, base_dir=study.base_dir, where=where,
+                                   dynamic=bool(study.spec.states))
         holdout = data_spec(table.data, name, symbols=symbols, base_dir=study.base_dir, where=where).holdout
         if holdout is not None:
             rec, held = split_record(rec, holdout)
@@ -318,7 +319,7 @@ def check_study(config: str | Path, *, echo: Echo = print) -> int:
     ok = True
     for name, table in study.experiments.items():
         rep = check_experiment(table.data, name, symbols=symbols, base_dir=study.base_dir, where=table.where(),
-                               sensitivity_fn=fn)
+                               sensitivity_fn=fn, dynamic=bool(study.spec.states))
         echo(rep.summary())
         ok &= rep.ok
     if not ok:

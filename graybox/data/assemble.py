@@ -6,8 +6,10 @@ Order of work per tag (each step a small function below):
 1. every file's rows of the tag, in recorded order (files in the order given);
 2. time stamps resolved per file in recorded order (see timestamps.py); rows whose wall time
    does not exist are masked with that reason;
-3. selected windows kept, excluded windows dropped;
-4. sorted by time (stably); exact duplicates (same time, value and flag) dropped; of
+3. selected windows kept, excluded windows dropped, samples before the experiment's start
+   dropped (counted; the start: see timestamps.experiment_start);
+4. sorted by time (stably; rows stamped earlier than the row before them in their file are
+   counted and the first named); exact duplicates (same time, value and flag) dropped; of
    conflicting duplicates (same time, another value) the first recorded is kept, the others
    are counted and one example is named;
 5. report-by-exception tags: held repeats dropped;
@@ -36,7 +38,8 @@ from graybox.data.quality import (REASON_NONEXISTENT, REASON_QUALITY, REASON_RAN
 from graybox.data.readers import QualityVocab, RawTable, Rows, file_sha256, read_table, row_at, row_count, take_rows
 from graybox.data.record import InputSeries, OutputSeries, Record, Segment
 from graybox.data.report import DataReport, SegmentReport, TagReport
-from graybox.data.timestamps import NAT, Place, parse_stamps
+from graybox.data.timestamps import (NAT, Place, backward_steps, describe_instant, experiment_start, first_stamp,
+                                     parse_stamps, require_time_axis)
 from graybox.data.units import Conversion, tag_conversion
 from graybox.errors import DataError
 
@@ -226,8 +229,26 @@ def _dedupe(t, v, q):
     return order[~same_t], int(exact.sum()), int(conflict.sum()), example
 
 
+def _out_of_order(t: np.ndarray, chunks: list[Chunk], idx: np.ndarray | None, files) -> tuple[int, str | None]:
+    """Rows stamped earlier than the row before them in the same file (the kept rows, in
+    recorded order), and the first such pair as text."""
+    file_starts = None
+    if len(chunks) > 1:
+        file_starts = np.cumsum([0] + [c.values.size for c in chunks[:-1]])
+        if idx is not None:
+            file_starts = np.searchsorted(idx, file_starts)
+    n, pos = backward_steps(t, file_starts)
+    if not n:
+        return 0, None
+    ra, rb = (pos - 1, pos) if idx is None else (int(idx[pos - 1]), int(idx[pos]))
+    return n, (f"{_source(chunks, rb, files)} ({iso(int(t[pos]))}) after "
+               f"{_source(chunks, ra, files)} ({iso(int(t[pos - 1]))})")
+
+
 def process_tag(tg: TagSpec, chunks: list[Chunk], spec: DataSpec, conv: Conversion,
-                quality_texts: list[str] = ()) -> TagData:
+                quality_texts: list[str] = (), start: int | None = None) -> TagData:
+    """One tag's samples after judgement; ``start``: the experiment's start (ns), samples
+    before it are dropped and counted."""
     t, gap, v, q = _concat(chunks)
     has_value = np.isfinite(v)
     blank = int((~has_value).sum())
@@ -243,11 +264,17 @@ def process_tag(tg: TagSpec, chunks: list[Chunk], spec: DataSpec, conv: Conversi
             inside &= ~_in_windows(t, spec.exclude)
         outside = int((keep & ~inside).sum())
         keep &= inside
+    before_start = 0
+    if start is not None and t.size and int(t.min()) < start:
+        early = keep & (t < start)
+        before_start = int(early.sum())
+        keep &= ~early
     idx = None if keep.all() else np.flatnonzero(keep)
     if idx is not None:
         t, v = t[idx], v[idx]
         q = q[idx] if q is not None else None
     order, n_exact, n_conflict, example = _dedupe(t, v, q)
+    n_back, back_text = (_out_of_order(t, chunks, idx, spec.files) if order is not None else (0, None))
     conflict_text = None
     if example is not None:
         a, b = example
@@ -283,7 +310,8 @@ def process_tag(tg: TagSpec, chunks: list[Chunk], spec: DataSpec, conv: Conversi
     masked.update(counts)
     stats = dict(files=tuple(dict.fromkeys(str(spec.files[c.file]) for c in chunks)), rows_read=rows_read,
                  blank=blank, masked=masked, flagged=flagged, exact=n_exact, conflict=n_conflict,
-                 conflict_example=conflict_text, repeats=repeats, outside=outside)
+                 conflict_example=conflict_text, repeats=repeats, outside=outside, before_start=before_start,
+                 out_of_order=n_back, out_of_order_example=back_text)
     return TagData(tg, t, values, ~masked_now, st, conv, stats)
 
 
@@ -363,6 +391,7 @@ def _tag_report(td: TagData, spec: DataSpec, start: int | None, end: int | None)
         med, spread = float(q50), float(q75 - q25)
     every = bool(use.all())
     tu = t if every else t[use]
+    first_valid = int(tu[0]) if tu.size else None
     if tu.size and start is not None and end is not None and end > start:
         # without a gap limit: three median intervals for a sampled tag; none for a tag logged
         # by exception (its value holds between changes, however long)
@@ -382,7 +411,9 @@ def _tag_report(td: TagData, spec: DataSpec, start: int | None, end: int | None)
         coverage_pct=cover, valid=int(use.sum()), masked=s["masked"], flagged=s["flagged"],
         exact_duplicates=s["exact"], conflicting_duplicates=s["conflict"], conflict_example=s["conflict_example"],
         held_repeats_dropped=s["repeats"], outside_windows=s["outside"], conversion=td.conversion.text,
-        gap_limit_s=limit, gaps=n_gaps, longest_gap_s=longest)
+        gap_limit_s=limit, gaps=n_gaps, longest_gap_s=longest, before_start=s["before_start"],
+        out_of_order=s["out_of_order"], out_of_order_example=s["out_of_order_example"],
+        first_valid_utc=iso(first_valid), first_valid_text=describe_instant(first_valid, spec.time, start))
 
 
 def _valid_within(td: TagData, lo: int, hi: int) -> int:
@@ -420,22 +451,26 @@ def _assemble(spec: DataSpec, hasher: Executor) -> Assembly:
     for tg in spec.tags:
         if tg.tag not in chunks:
             raise missing_tag_error(tg, spec, tables)
+    every_chunk = [c for cs in chunks.values() for c in cs]
+    origin, origin_from = experiment_start(spec.start, first_stamp([c.t_ns for c in every_chunk],
+                                                                   [c.nonexistent for c in every_chunk]), spec.select)
+    for tg in spec.tags:
         if spec.select:  # the span of the data, for the message of a window that selects nothing
             for c in chunks[tg.tag]:
                 ok = c.t_ns[~_gaps(c) & np.isfinite(c.values)]
                 if ok.size:
                     raw_spans.append((int(ok.min()), int(ok.max())))
-        tags.append(process_tag(tg, chunks[tg.tag], spec, convs[tg.symbol], vocab.texts))
+        tags.append(process_tag(tg, chunks[tg.tag], spec, convs[tg.symbol], vocab.texts, start=origin))
     if spec.select:
         _check_select(spec, tags, raw_spans)
     problems: list[DataError] = []
     nonempty = [td for td in tags if td.t_ns.size]
-    start = min(int(td.t_ns[0]) for td in nonempty) if nonempty else None
+    start = origin if origin is not None else (min(int(td.t_ns[0]) for td in nonempty) if nonempty else None)
     end = max(int(td.t_ns[-1]) for td in nonempty) if nonempty else None
     for td in tags:
         if td.t_ns.size == 0:
             problems.append(DataError(f"{td.spec.role} '{td.spec.symbol}' (tag '{td.spec.tag}') has no sample left",
-                                      where=td.spec.where_tag, hint="check the selected and excluded windows"))
+                                      where=td.spec.where_tag, hint="check the start and the selected and excluded windows"))
         elif not td.use.any():
             reasons = ", ".join(f"{n} {r}" for r, n in td.stats["masked"].items())
             problems.append(DataError(
@@ -449,6 +484,7 @@ def _assemble(spec: DataSpec, hasher: Executor) -> Assembly:
             problems.append(DataError("no segment holds a valid observation of every output",
                                       where=spec.where, hint="widen the windows or raise max_gap"))
     tag_reports = tuple(_tag_report(td, spec, start, end) for td in tags)
+    start_text = describe_instant(start, spec.time) + (f" ({origin_from})" if origin_from else "")
     sources = tuple({"path": str(path), "sha256": d.result()} for path, d in zip(spec.files, digests))
     record = _record(spec, tags, start, segments, sources, notes) if segments else None
     seg_reports = tuple(
@@ -460,7 +496,8 @@ def _assemble(spec: DataSpec, hasher: Executor) -> Assembly:
         experiment=spec.name, sources=sources, tags=tag_reports,
         start_utc=iso(start), end_utc=iso(end), segments=seg_reports,
         select=tuple((iso(a), iso(b)) for a, b in spec.select), exclude=tuple((iso(a), iso(b)) for a, b in spec.exclude),
-        holdout=holdout, problems=tuple(p.render() for p in problems), notes=tuple(notes))
+        holdout=holdout, problems=tuple(p.render() for p in problems), notes=tuple(notes),
+        start_from=origin_from, start_text=start_text)
     return Assembly(spec, record, report, tuple(problems))
 
 
@@ -511,12 +548,14 @@ def _record(spec: DataSpec, tags: list[TagData], start: int, segments, sources, 
 
 # -- public ------------------------------------------------------------------------------------
 def load_experiment(table: dict, name: str, *, symbols: Mapping[str, SymbolInfo], base_dir: Path,
-                    where: str) -> tuple[Record, DataReport]:
+                    where: str, dynamic: bool = False) -> tuple[Record, DataReport]:
     """Read, check and convert one experiment's data into a Record in model units.
 
-    Raises ConfigError for mistakes in the table, DataError for problems with the data
-    (each located at the file and line, column or tag)."""
+    ``dynamic``: the model has states, so the table must name its time column (a static
+    model may take the rows in order).  Raises ConfigError for mistakes in the table,
+    DataError for problems with the data (each located at the file and line, column or tag)."""
     spec = parse_data_table(table, name, symbols=symbols, base_dir=Path(base_dir), where=where)
+    require_time_axis(spec, dynamic)
     result = assemble(spec)
     if result.problems:
         raise result.problems[0]
@@ -525,13 +564,14 @@ def load_experiment(table: dict, name: str, *, symbols: Mapping[str, SymbolInfo]
 
 
 def check_experiment(table: dict, name: str, *, symbols: Mapping[str, SymbolInfo], base_dir: Path,
-                     where: str, sensitivity_fn=None) -> DataReport:
+                     where: str, sensitivity_fn=None, dynamic: bool = False) -> DataReport:
     """Read and validate without fitting.  Problems that stop a fit (an output with every
     sample masked, no usable segment) are listed in ``report.problems`` (``report.ok`` is
     False); errors that stop reading are raised.  With ``sensitivity_fn`` (see
     :func:`graybox.data.windows.rank_windows`) and an ``[informative]`` table or its defaults,
-    the informative windows are ranked too."""
+    the informative windows are ranked too.  ``dynamic``: as for :func:`load_experiment`."""
     spec = parse_data_table(table, name, symbols=symbols, base_dir=Path(base_dir), where=where)
+    require_time_axis(spec, dynamic)
     result = assemble(spec)
     report = result.report
     if sensitivity_fn is not None and result.record is not None:

@@ -19,12 +19,23 @@ tables with the same keys.  Every key, with its default::
     no_value = ["", "NaN", "nan", "NA", "#N/A"]   # cell texts meaning "no sample here"
     sheet = "Sheet1"                  # excel: the sheet; default the first
     # -- time stamps
-    time_column = "timestamp"         # omit for a static table: rows become 0, 1, 2, ... s
+    time_column = "timestamp"         # omit only for a static model (no states): rows become 0, 1, 2, ... s;
+                                      # a model with states without it is an error
     time_format = "iso"               # iso:        ISO 8601 text, each stamp with its offset (Z, +01:00)
                                       # local:      wall-clock text (or naive stored times) in `timezone`
                                       # epoch_s:    seconds since 1970-01-01T00:00Z
                                       # serial_1900 / serial_1904: spreadsheet day numbers, wall-clock
                                       #             in `timezone`, in that date system
+                                      # elapsed:    numbers of time since the start of a run (lab, batch)
+    time_units = "min"                # elapsed only, and required there: any pint time unit (s, min, h, day)
+    start = "2026-01-05T06:00Z"       # where the experiment starts and its initial state applies: an
+                                      # instant (ISO with offset, or local in `timezone`); for elapsed
+                                      # time a number in time_units (start = 0).  Default: the first
+                                      # time stamp of the data, a row without values included; a select
+                                      # window opening later moves it there.  Rows before it are dropped
+                                      # (counted).  Stamps out of order within a file are sorted (stably,
+                                      # counted); duplicates (same tag and instant): identical ones
+                                      # dropped, of conflicting ones the first recorded kept (counted)
     timezone = "Europe/Berlin"        # an IANA zone; required by local and serial stamps
     date_order = "ymd"                # local text only: ymd | dmy | mdy; never guessed
     clock = "24h"                     # local text only: 24h | 12h (12h stamps end in AM/PM)
@@ -39,7 +50,7 @@ tables with the same keys.  Every key, with its default::
     standard_temperature = "0 degC"
     # -- gaps, windows, checks
     max_gap = "15 min"                # an input gap longer than this splits the record
-    select = [["2026-01-05T00:00Z", "2026-01-20T00:00Z"]]   # keep only these spans
+    select = [["2026-01-05T00:00Z", "2026-01-20T00:00Z"]]   # keep only these spans (elapsed: numbers)
     exclude = [["2026-01-11T06:00Z", "2026-01-11T18:00Z"]]  # drop these (shutdown, cleaning)
     holdout = 0.25                    # last fraction (or from an instant) kept for validation
     stuck_after = "2 h"               # a run of samples flat to within the deadband this long
@@ -93,7 +104,7 @@ ROLE_INPUT = "input"
 ROLE_OUTPUT = "output"
 LAYOUTS = ("wide", "long")
 FORMATS = ("csv", "parquet", "excel")
-TIME_FORMATS = ("iso", "local", "epoch_s", "serial_1900", "serial_1904")
+TIME_FORMATS = ("iso", "local", "epoch_s", "serial_1900", "serial_1904", "elapsed")
 DATE_ORDERS = ("ymd", "dmy", "mdy")
 CLOCKS = ("24h", "12h")
 STUCK_ACTIONS = ("flag", "mask")
@@ -102,7 +113,8 @@ DEFAULT_NO_VALUE = ("", "NaN", "nan", "NA", "#N/A")
 
 DATA_KEYS = (
     "files", "format", "layout", "delimiter", "decimal", "encoding", "header_row", "skip_after_header", "no_value",
-    "sheet", "time_column", "time_format", "timezone", "date_order", "clock", "tag_column", "value_column",
+    "sheet", "time_column", "time_format", "time_units", "start", "timezone", "date_order", "clock", "tag_column",
+    "value_column",
     "quality_column", "good_quality", "atmosphere", "standard_pressure", "standard_temperature", "max_gap",
     "select", "exclude", "holdout", "stuck_after", "stuck_action", "spikes", "informative", "tags",
 )
@@ -170,6 +182,8 @@ class TimeSpec:
     timezone: str | None
     date_order: str | None
     clock: str
+    units: str | None = None  # elapsed time: the declared unit ("min", "h", ...)
+    seconds_per_unit: float = 1.0
 
 
 @dataclass(frozen=True)
@@ -203,6 +217,7 @@ class DataSpec:
     stuck_action: str
     spikes: SpikeSpec | None
     search: SearchSpec | None
+    start: int | None = None  # the declared start (UTC ns; elapsed ns for elapsed time); None = the data's first stamp
 
     def tag_of(self, symbol: str) -> TagSpec:
         return next(t for t in self.tags if t.symbol == symbol)
@@ -263,25 +278,36 @@ def parse_instant(text, tz: str | None, where: str) -> int:
     return (delta.days * 86400 + delta.seconds) * 10**9 + delta.microseconds * 1000
 
 
-def _windows(t: Table, key: str, tz: str | None) -> tuple[tuple[int, int], ...]:
+def _bound(value, tz: str | None, where: str, unit_s: float | None) -> int:
+    """An instant in ns: as :func:`parse_instant`, or for elapsed-time tables (``unit_s``, the
+    seconds of one time unit) a number in the time column's units."""
+    if unit_s is None:
+        return parse_instant(value, tz, where)
+    if isinstance(value, (int, float)) and not isinstance(value, bool) and np.isfinite(value):
+        return int(round(float(value) * unit_s * 1e9))
+    raise ConfigError(f"the time column holds elapsed time: an instant here is a number in its time_units, got "
+                      f"{value!r}", where=where, hint="e.g. 0 or 20 (in the declared time_units)")
+
+
+def _windows(t: Table, key: str, tz: str | None, unit_s: float | None = None) -> tuple[tuple[int, int], ...]:
     if key not in t:
         return ()
     raw = t.get(key)
-    if isinstance(raw, list) and len(raw) == 2 and all(isinstance(v, (str, datetime)) for v in raw):
+    if isinstance(raw, list) and len(raw) == 2 and all(isinstance(v, (str, datetime, int, float)) for v in raw):
         raw = [raw]
     if not isinstance(raw, list) or not all(isinstance(w, list) and len(w) == 2 for w in raw):
         raise t.error(key, f"must be a list of [start, end] pairs, got {raw!r}",
                       hint=f"{key} = [[\"2026-01-05T00:00Z\", \"2026-01-06T00:00Z\"]]")
     out = []
     for a, b in raw:
-        lo, hi = parse_instant(a, tz, t.where(key)), parse_instant(b, tz, t.where(key))
+        lo, hi = _bound(a, tz, t.where(key), unit_s), _bound(b, tz, t.where(key), unit_s)
         if not hi > lo:
             raise t.error(key, f"window [{a}, {b}] ends before it starts")
         out.append((lo, hi))
     return tuple(out)
 
 
-def _holdout(t: Table, tz: str | None):
+def _holdout(t: Table, tz: str | None, elapsed: bool = False):
     if "holdout" not in t:
         return None
     v = t.get("holdout")
@@ -289,6 +315,9 @@ def _holdout(t: Table, tz: str | None):
         if not 0.0 < v < 1.0:
             raise t.error("holdout", f"a fraction must lie between 0 and 1, got {v}")
         return float(v)
+    if elapsed:
+        raise t.error("holdout", "on elapsed time, holdout is a fraction of the record",
+                      hint="holdout = 0.25 holds out the last quarter")
     ns = parse_instant(v, tz, t.where("holdout"))
     return datetime.fromtimestamp(ns / 1e9, tz=timezone.utc)
 
@@ -386,6 +415,7 @@ def parse_data_table(table: dict, name: str, *, symbols: Mapping[str, SymbolInfo
 
     time_column = t.string("time_column", None) if "time_column" in t else None
     tfmt = t.string("time_format", "iso", choices=TIME_FORMATS)
+    time_units, unit_s = _time_units(t, tfmt)
     tz = t.string("timezone", None) if "timezone" in t else None
     if tz is not None:
         try:
@@ -415,9 +445,10 @@ def parse_data_table(table: dict, name: str, *, symbols: Mapping[str, SymbolInfo
 
     defaults = {k: _quantity_text(t, k) for k in ("atmosphere", "standard_pressure", "standard_temperature")}
     max_gap = _duration(t, "max_gap")
-    select = _windows(t, "select", tz)
-    exclude = _windows(t, "exclude", tz)
-    holdout = _holdout(t, tz)
+    select = _windows(t, "select", tz, unit_s)
+    exclude = _windows(t, "exclude", tz, unit_s)
+    holdout = _holdout(t, tz, unit_s is not None)
+    start = _start(t, time_column, tz, unit_s)
     stuck_after = _duration(t, "stuck_after", 7200.0)
     stuck_action = t.string("stuck_action", "flag", choices=STUCK_ACTIONS)
     spikes = None
@@ -456,8 +487,36 @@ def parse_data_table(table: dict, name: str, *, symbols: Mapping[str, SymbolInfo
                           where=bad.where, hint="set quality_column in the data table instead")
     read = ReadOptions(fmt, layout, delimiter, decimal, encoding, int(header_row), int(skip), no_value, sheet,
                        tag_column, value_column, quality_column)
-    return DataSpec(name, where, files, read, TimeSpec(time_column, tfmt, tz, date_order, clock), good_set, tags,
-                    max_gap, select, exclude, holdout, float(stuck_after), stuck_action, spikes, search)
+    time = TimeSpec(time_column, tfmt, tz, date_order, clock, time_units, unit_s or 1.0)
+    return DataSpec(name, where, files, read, time, good_set, tags,
+                    max_gap, select, exclude, holdout, float(stuck_after), stuck_action, spikes, search, start)
+
+
+def _time_units(t: Table, tfmt: str) -> tuple[str | None, float | None]:
+    """The elapsed-time unit and its seconds: required by time_format = "elapsed", refused
+    elsewhere (every other format says its own unit)."""
+    from graybox.data.timestamps import ELAPSED, seconds_per_time_unit
+
+    if tfmt != ELAPSED:
+        if "time_units" in t:
+            raise t.error("time_units", f"time_format = '{tfmt}' stamps carry their own units",
+                          hint="time_units is for time_format = \"elapsed\" (time since the start of a run)")
+        return None, None
+    if "time_units" not in t:
+        raise t.error("time_format", "elapsed time needs its units declared",
+                      hint="add time_units = \"min\" (or \"s\", \"h\", \"day\")")
+    text = t.get("time_units")
+    return str(text).strip(), seconds_per_time_unit(text, t.where("time_units"))
+
+
+def _start(t: Table, time_column: str | None, tz: str | None, unit_s: float | None) -> int | None:
+    """The declared start of the experiment (ns), where its initial state applies."""
+    if "start" not in t:
+        return None
+    if time_column is None:
+        raise t.error("start", "a start needs a time column to be placed on",
+                      hint="declare time_column, or remove start")
+    return _bound(t.get("start"), tz, t.where("start"), unit_s)
 
 
 def normalize_quality(value) -> str:

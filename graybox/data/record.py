@@ -2,7 +2,9 @@
 
 A record holds one experiment (one unit, one time window):
 
-* ``start_utc``: the UTC instant that time zero stands for;
+* ``start_utc``: the UTC instant that time zero stands for: the experiment's start, where
+  its first segment begins and the initial state applies (the data layer puts it at the
+  declared start or the first time stamp of the data, which may precede every sample);
 * ``inputs``: each a series of samples (time in seconds from ``start_utc``, value in model
   units) that can be evaluated at any time ``t``: held from the previous sample (the default,
   as a historian's last value holds) or linear between samples;
@@ -151,8 +153,12 @@ class Record:
             object.__setattr__(self, "segments", tuple(self.segments))
 
     def time_span(self) -> tuple[float, float]:
+        """From the earlier of the first sample and the first segment's start (an experiment
+        may start before its first sample) to the later of the last sample and segment end."""
         lo = min(float(s.t[0]) for s in [*self.inputs.values(), *self.outputs.values()])
         hi = max(float(s.t[-1]) for s in [*self.inputs.values(), *self.outputs.values()])
+        if self.segments:
+            lo, hi = min(lo, self.segments[0].t_start), max(hi, self.segments[-1].t_end)
         return lo, hi
 
     @property

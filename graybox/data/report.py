@@ -32,6 +32,11 @@ class TagReport:
     gap_limit_s: float | None
     gaps: int
     longest_gap_s: float | None
+    before_start: int = 0  # samples stamped before the experiment's start, dropped
+    out_of_order: int = 0  # rows stamped earlier than the row before them (same file), sorted
+    out_of_order_example: str | None = None
+    first_valid_utc: str | None = None  # the first usable sample (an output's first observation)
+    first_valid_text: str = ""  # the same for a reader (elapsed time, offset from the start)
 
     @property
     def masked_total(self) -> int:
@@ -61,6 +66,8 @@ class DataReport:
     problems: tuple[str, ...] = ()  # why a fit could not run; empty = it could
     notes: tuple[str, ...] = ()
     windows: tuple[Any, ...] = field(default=())  # informative windows (WindowScore), when ranked
+    start_from: str = ""  # what set start_utc (the experiment's start): declared, first stamp, select window
+    start_text: str = ""  # the start for a reader
 
     @property
     def ok(self) -> bool:
@@ -82,6 +89,11 @@ class DataReport:
 
     def summary(self) -> str:
         lines = [f"experiment '{self.experiment}': {self.start_utc or '?'} .. {self.end_utc or '?'} (UTC)"]
+        if self.start_text:
+            lines.append(f"  start: {self.start_text}; the initial state applies here")
+            firsts = [f"{t.symbol} {t.first_valid_text}" for t in self.tags if t.role == "output" and t.first_valid_text]
+            if firsts:
+                lines.append("  first observation: " + ", ".join(firsts))
         for s in self.sources:
             lines.append(f"  read {s['path']}  sha256 {s['sha256'][:12]}")
         head = ("symbol", "tag", "role", "rows", "span (UTC)", "interval", "spread", "cover", "valid", "masked",
@@ -109,6 +121,11 @@ class DataReport:
             if t.conflicting_duplicates:
                 details.append(f"{t.conflicting_duplicates} conflicting duplicates (first kept; e.g. "
                                f"{t.conflict_example})")
+            if t.out_of_order:
+                details.append(f"{t.out_of_order} rows stamped before the row above them, sorted into time order "
+                               f"(e.g. {t.out_of_order_example})")
+            if t.before_start:
+                details.append(f"{t.before_start} samples before the start dropped")
             if t.held_repeats_dropped:
                 details.append(f"{t.held_repeats_dropped} held repeats dropped (exception logging)")
             if t.outside_windows:

@@ -9,6 +9,17 @@
 * ``serial_1900`` / ``serial_1904``: spreadsheet day numbers of wall-clock time in the
   declared zone (rounded to the millisecond); the 1900 system counts a 29 February 1900
   that never was, so day 60 is rejected and days from 61 on count from 1899-12-30.
+* ``elapsed``: numbers of elapsed time since the start of a run (lab and batch records), in
+  the declared ``time_units`` (``min``, ``h``, ``s``, ``day``: any time unit pint knows,
+  converted with the one registry; rounded to the nanosecond).  They name no calendar
+  instant: elapsed zero is put at 1970-01-01T00:00Z, and reports print elapsed times.
+
+The time axis is declared, never guessed.  A model with states needs a time column
+(:func:`require_time_axis`); only a static model may take a table's rows in order.  An
+experiment starts at its declared ``start`` or else at the first time stamp of its data, a
+row without any value included (a batch record's ``0,,,`` row says when it started); a
+selected window that opens later moves the start to its opening (:func:`experiment_start`).
+The initial state applies at that start.
 
 Wall-clock times are resolved in *recorded order*, before any sorting: in the hour that a
 fall-back change repeats, the first pass through the hour is summer time and a stamp not
@@ -30,6 +41,7 @@ from graybox.data.config import TimeSpec
 from graybox.errors import DataError
 
 NAT = np.iinfo(np.int64).min
+ELAPSED = "elapsed"
 _DAY_NS = 86_400 * 10**9
 _SERIAL_1900_BASE = np.datetime64("1899-12-30T00:00:00", "ns").astype(np.int64)
 _SERIAL_1904_BASE = np.datetime64("1904-01-01T00:00:00", "ns").astype(np.int64)
@@ -75,7 +87,7 @@ def parse_stamps(raw: pd.Series, spec: TimeSpec, place: Place, groups: np.ndarra
         ns = pd.DatetimeIndex(raw).tz_convert("UTC").as_unit("ns").asi8
         return Stamps(np.asarray(ns, np.int64), np.zeros(ns.size, bool))
     if kind == "naive":
-        if fmt in ("epoch_s", "iso"):
+        if fmt in ("epoch_s", "iso", ELAPSED):
             raise DataError(f"the file stores date-times without an offset but time_format = '{fmt}'",
                             where=place.file, hint="set time_format = \"local\" with timezone = \"...\"")
         wall = np.asarray(pd.DatetimeIndex(raw).as_unit("ns").asi8, np.int64)
@@ -155,10 +167,14 @@ def _numbers(values: np.ndarray, spec: TimeSpec, place: Place, groups) -> Stamps
     if fmt == "epoch_s":
         ns = np.round(values * 1e6).astype(np.int64) * 1000
         return Stamps(ns, np.zeros(ns.size, bool))
+    if fmt == ELAPSED:
+        ns = np.round(values * (spec.seconds_per_unit * 1e9)).astype(np.int64)
+        return Stamps(ns, np.zeros(ns.size, bool))
     if fmt in ("serial_1900", "serial_1904"):
         return localize(serial_to_wall_ns(values, fmt, place), spec.timezone, groups)
     raise DataError(f"the time column holds numbers but time_format = '{fmt}'", where=place.at(0),
-                    hint="set time_format = \"epoch_s\", \"serial_1900\" or \"serial_1904\"")
+                    hint="set time_format = \"epoch_s\", \"serial_1900\" or \"serial_1904\"; for time "
+                         "since the start of a run, time_format = \"elapsed\" with time_units = \"min\" (or \"h\")")
 
 
 def serial_to_wall_ns(days: np.ndarray, system: str, place: Place | None = None) -> np.ndarray:
@@ -403,3 +419,117 @@ def _second_pass(wall: np.ndarray, groups: np.ndarray | None) -> np.ndarray:
     out = np.zeros(n, bool)
     out[order] = passed
     return out
+
+
+# -- the time axis of an experiment ------------------------------------------------------------
+def seconds_per_time_unit(text, where: str) -> float:
+    """Seconds in one ``text`` (``"min"``, ``"h"``, ``"s"``, ``"day"``...), by the shared pint
+    registry; a ConfigError located at ``where`` for text that is no unit or no time."""
+    import pint
+
+    from graybox.errors import ConfigError
+    from graybox.unitreg import registry
+
+    hint = "time_units = \"min\" (or \"s\", \"h\", \"day\")"
+    if not isinstance(text, str) or not text.strip():
+        raise ConfigError(f"time_units must be a time unit as text, got {text!r}", where=where, hint=hint)
+    ureg = registry()
+    try:
+        unit = ureg.Unit(text.strip())
+    except (pint.errors.UndefinedUnitError, pint.errors.DefinitionSyntaxError, ValueError, TypeError,
+            AttributeError, AssertionError):
+        raise ConfigError(f"'{text}' is not a unit", where=where, hint=hint) from None
+    if unit.dimensionality != ureg.second.dimensionality:
+        raise ConfigError(f"'{text}' is not a unit of time (its dimension is {unit.dimensionality})", where=where,
+                          hint=hint)
+    return float(ureg.Quantity(1.0, unit).to(ureg.second).magnitude)
+
+
+def require_time_axis(spec, dynamic: bool) -> None:
+    """A model with states is simulated in time: its data must say when each row was taken.
+    A static model (no states) may take the rows in their order (0, 1, 2, ... s)."""
+    if dynamic and spec.time.column is None:
+        from graybox.data.config import table_from_where
+
+        raise DataError("the model has states, but the data table names no time column: its rows have no times to "
+                        "simulate on", where=table_from_where({}, spec.where).where("time_column"),
+                        hint="add time_column = \"...\" (the column of time stamps) with its time_format; for time "
+                             "since the start of a run, time_format = \"elapsed\" and time_units = \"min\"")
+
+
+START_DECLARED = "the declared start"
+START_DATA = "the first time stamp of the data"
+START_SELECT = "the opening of the selected window"
+
+
+def experiment_start(declared: int | None, first_stamp: int | None,
+                     select: tuple[tuple[int, int], ...] = ()) -> tuple[int | None, str]:
+    """Where the experiment starts (ns) and what set it: the declared ``start``, else the first
+    time stamp of the data (any row, with or without values); a selected window opening later
+    (the first one still open then) moves it to its opening."""
+    start, why = (declared, START_DECLARED) if declared is not None else (first_stamp, START_DATA)
+    if start is None:
+        return None, ""
+    for lo, hi in sorted(select):
+        if hi > start:
+            if lo > start:
+                return int(lo), START_SELECT
+            break
+    return int(start), why
+
+
+def first_stamp(times: list[np.ndarray], gaps: list[np.ndarray | None]) -> int | None:
+    """The earliest existing time stamp among arrays of UTC ns (``gaps``: rows whose wall time
+    does not exist, or None when none did)."""
+    best = None
+    for t, g in zip(times, gaps):
+        ok = t if g is None else t[~g]
+        if ok.size:
+            m = int(ok.min())
+            best = m if best is None else min(best, m)
+    return best
+
+
+def backward_steps(t: np.ndarray, file_starts: np.ndarray | None = None) -> tuple[int, int | None]:
+    """How many rows are stamped earlier than the row before them (stamps in recorded order;
+    the first row of each file, at positions ``file_starts``, is not compared with the last
+    of the file before: files may be listed in any order), and the position of the first."""
+    if t.size < 2:
+        return 0, None
+    back = t[1:] < t[:-1]
+    if file_starts is not None and file_starts.size:
+        inner = file_starts[(file_starts > 0) & (file_starts < t.size)]
+        back[inner - 1] = False
+    n = int(np.count_nonzero(back))
+    return n, (int(np.argmax(back)) + 1 if n else None)
+
+
+def describe_instant(ns: int | None, spec: TimeSpec, start: int | None = None) -> str:
+    """An instant as a reader wants it: ISO 8601 UTC, or the elapsed time in the table's units;
+    with ``start``, its offset from the start too."""
+    if ns is None:
+        return "-"
+    if spec.format == ELAPSED:
+        text = f"{ns / 1e9 / spec.seconds_per_unit:g} {spec.units}"
+    else:
+        text = np.datetime64(int(ns), "ns").astype("datetime64[s]").astype(str) + "Z"
+        if ns % 10**9:
+            text = np.datetime64(int(ns), "ns").astype("datetime64[ms]").astype(str) + "Z"
+    if start is not None and ns != start:
+        d = (ns - start) / 1e9
+        text += f" (start {'+' if d >= 0 else '-'} {_span_text(abs(d), spec)})"
+    elif start is not None:
+        text += " (at the start)"
+    return text
+
+
+def _span_text(seconds: float, spec: TimeSpec) -> str:
+    if spec.format == ELAPSED:
+        return f"{seconds / spec.seconds_per_unit:g} {spec.units}"
+    if seconds >= 2 * 86400:
+        return f"{seconds / 86400:.4g} d"
+    if seconds >= 2 * 3600:
+        return f"{seconds / 3600:.4g} h"
+    if seconds >= 120:
+        return f"{seconds / 60:.4g} min"
+    return f"{seconds:.4g} s"

@@ -13,7 +13,9 @@ Initial states (per segment, per state; the spec says which):
   itself is used up as the initial value and not compared; observations before it are not
   compared either;
 * ``steady`` (the default otherwise): the steady state at the segment's first inputs;
-* a number: given;
+* a number: given, at the segment's start (the first segment's start is the experiment's:
+  its declared start or its first time stamp).  A given state cannot start at the first
+  segment's start while a measured one starts later: that is an error;
 * ``estimate``: a free parameter per segment, estimated with the others.
 """
 
@@ -106,6 +108,14 @@ def plan(spec: ModelSpec, record: Record) -> Timeline:
             init_obs[out] = int(ok[0])
             x0m[state] = float(series.values[ok[0]])
             t0 = max(t0, float(series.t[ok[0]]))
+        given = [s.name for s in spec.states if not isinstance(s.initial, str)]
+        if si == 0 and given and t0 > seg.t_start:
+            late = max(x0m, key=lambda st: record.outputs[measured_init[st]].t[init_obs[measured_init[st]]])
+            raise DataError(f"record '{record.name}': state {', '.join(repr(g) for g in given)} starts from its given "
+                            f"value at the experiment's start, but state '{late}' from its first measurement "
+                            f"{t0 - seg.t_start:g} s later: the states cannot start at one instant",
+                            hint=f"give '{late}' an initial value (a number, or \"estimate\"), or declare the data "
+                                 "table's start at that measurement")
         knots = [np.array([t0, seg.t_end])]
         for u in spec.input_names:
             ts = record.inputs[u].t
