@@ -41,6 +41,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     c = sub.add_parser("check", help="check a study file and its data without fitting")
     c.add_argument("config", help="the study file (TOML)")
+    _sampling_options(c)  # the same options as fit, so that check judges the same run
 
     b = sub.add_parser("batch", help="run many fits from a manifest (a CSV table of jobs)")
     b.add_argument("manifest", help="the manifest CSV: job, study, data, start, end, sample")
@@ -79,7 +80,8 @@ def run(argv: list[str] | None = None) -> int:
                           sampler_options=_sampler_overrides(args))
         return EXIT_OK
     if args.command == "check":
-        return workflow.check_study(args.config)
+        return workflow.check_study(args.config, sample=False if args.no_sample else None,
+                                    sampler_options=_sampler_overrides(args))
     if args.command == "batch":
         from pathlib import Path
 

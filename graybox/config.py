@@ -12,16 +12,28 @@ Top-level tables (every key is checked; unknown keys are rejected with a suggest
     [sampling]              the posterior stage (graybox.posterior)
 
 Relative paths inside resolve against the folder of the study file.
+
+Everything a fit needs from the study file alone is checked here, once, before any data is
+read: the model, the estimate settings, the noise options, the sampler settings and every
+parameter's prior (``graybox check`` and ``graybox fit`` therefore refuse a study with the same
+message).  Priors are checked whether or not sampling runs (an unknown kind is an error
+either way); only the rule "a uniform prior needs finite bounds" waits for sampling to be on
+(the study's ``[sampling] enabled``, unless the caller decides: ``fit --no-sample``,
+``check --no-sample``).  The study file must be a regular file of at most 1 MiB, nested at
+most 32 levels deep (graybox.configkit).
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 from graybox.configkit import Table, load_toml
 from graybox.errors import ConfigError
 from graybox.estimate.fit import FitSettings
+from graybox.posterior.config import SamplerSettings, parameter_priors, sampler_settings
+from graybox.posterior.noise import NoiseModel, noise_models
+from graybox.posterior.priors import Prior
 from graybox.model.build import build_spec
 from graybox.model.spec import ModelSpec
 from graybox.simulate import ENGINES, Tolerances
@@ -32,6 +44,8 @@ STUDY_KEYS = ("name", "seed", "dataset", "description")
 NOISE_KEYS = ("sigma", "kind", "phi", "error_time_constant", "dof")
 NOISE_KINDS = ("gaussian", "ar1", "student_t")
 ESTIMATE_KEYS = ("multistart", "max_evaluations", "polish", "engine", "integrator", "rtol", "atol")
+MAX_MULTISTART = 10_000  # each start is a full least-squares fit; 10 to 100 are typical
+MAX_EVALUATIONS = 10_000_000
 
 
 @dataclass(frozen=True)
@@ -57,18 +71,26 @@ class Study:
     fit: FitSettings
     engine: str
     tol: Tolerances
-    sampling: Table
+    sampling: Table  # the raw [sampling] table
+    # parsed once by load_study, used by the fit as they are:
+    sampler: SamplerSettings = SamplerSettings()  # enabled: whether this run samples
+    priors: dict[str, Prior] = field(default_factory=dict)  # free parameter -> prior (study file alone)
+    noise_models: tuple[NoiseModel, ...] = ()  # one per measured output, validated
 
     @property
     def base_dir(self) -> Path:
         return self.path.parent
 
 
-def load_study(path: str | Path, overrides: dict | None = None) -> Study:
-    """Read and check a study file (model checks included); no data is read yet.
+def load_study(path: str | Path, overrides: dict | None = None, *, sample: bool | None = None,
+               sampler_options: dict | None = None) -> Study:
+    """Read and check a study file (model, estimate, noise, sampler and prior checks); no
+    data is read yet.
 
     ``overrides`` replaces keys of top-level tables before validation, e.g.
-    ``{"data": {"files": [...]}}`` (used by fleet batches to point one study at many units)."""
+    ``{"data": {"files": [...]}}`` (used by fleet batches to point one study at many units).
+    ``sample`` decides whether this run samples (None: the study's ``[sampling] enabled``);
+    ``sampler_options`` replace ``[sampling]`` keys (command-line options, None = not given)."""
     path = Path(path).resolve()
     raw = apply_overrides(load_toml(path), overrides or {}, path)
     top = Table(raw, (), path)
@@ -83,11 +105,18 @@ def load_study(path: str | Path, overrides: dict | None = None) -> Study:
     seed = int(st.number("seed", 0, integer=True, minimum=0))
     fit = FitSettings(
         sigmas={o: n.sigma for o, n in noise.items()},
-        multistart=int(est.number("multistart", 0, integer=True, minimum=0)),
-        max_nfev=int(est.number("max_evaluations", 2000, integer=True, minimum=10)),
+        multistart=_at_most(est, "multistart", int(est.number("multistart", 0, integer=True, minimum=0)),
+                            MAX_MULTISTART, "10 to 100 starts are typical"),
+        max_nfev=_at_most(est, "max_evaluations", int(est.number("max_evaluations", 2000, integer=True, minimum=10)),
+                          MAX_EVALUATIONS, "a few thousand are typical"),
         polish=est.boolean("polish", True),
         seed=seed,
     )
+    check_free_values(spec, fit, est, top.sub("parameters"))
+    sampler = sampler_settings(top.sub("sampling"), sampler_options)
+    sampler = replace(sampler, enabled=sampler.enabled if sample is None else bool(sample))
+    priors = parameter_priors(spec, path, proper=sampler.enabled)
+    models = tuple(noise_models(noise, list(spec.output_names), path))
     tol = Tolerances(
         rtol=est.number("rtol", 1e-8, positive=True),
         atol=est.number("atol", 1e-10, positive=True),
@@ -106,7 +135,38 @@ def load_study(path: str | Path, overrides: dict | None = None) -> Study:
         engine=est.string("engine", "auto", ENGINES),
         tol=tol,
         sampling=top.sub("sampling"),
+        sampler=sampler,
+        priors=priors,
+        noise_models=models,
     )
+
+
+def _at_most(table: Table, key: str, value: int, limit: int, typical: str) -> int:
+    """``value`` if it is at most ``limit``, else a located error."""
+    if value > limit:
+        raise table.error(key, f"must be at most {limit:,}, got {value:,}", hint=typical)
+    return value
+
+
+def check_free_values(spec: ModelSpec, fit: FitSettings, est: Table, params: Table) -> None:
+    """What the least-squares stage needs of the free values, from the study file alone:
+    something to estimate, and finite bounds on every free value when multi-starting."""
+    from graybox.model.spec import INITIAL_ESTIMATE
+
+    free = [(p.name, p.lower, p.upper) for p in spec.parameters if not p.fixed]
+    free += [(f"{s.name} (initial state)", *s.initial_bounds) for s in spec.states if s.initial == INITIAL_ESTIMATE]
+    if not free:
+        raise ConfigError("every parameter is fixed: there is nothing to estimate", where=params.where(),
+                          hint="set fixed = false for at least one parameter")
+    if fit.multistart > 0:
+        import math
+
+        open_ = [name for name, lo, hi in free if not (math.isfinite(lo) and math.isfinite(hi))]
+        if open_:
+            raise ConfigError(f"multi-start needs finite bounds on every free value; without: {', '.join(open_)}",
+                              where=est.where("multistart"),
+                              hint="give bounds = [low, high] to every free parameter and initial_bounds to every "
+                                   "estimated initial state, or set multistart = 0")
 
 
 def apply_overrides(raw: dict, overrides: dict, path: Path) -> dict:

@@ -63,24 +63,80 @@ def _find_line(path: Path | None, table: tuple[str, ...], key: str | None) -> in
     return best or header_line
 
 
+MAX_CONFIG_BYTES = 1 << 20  # a study file is a few kilobytes; 1 MiB is far beyond any real one
+MAX_NESTING = 32  # arrays and tables inside each other; a real study file nests 3 or 4 deep
+
+# the tokens that matter for nesting: strings and comments (skipped) and brackets
+_NEST_TOKENS = re.compile(r'"""(?:\\.|[^\\])*?"""|\'\'\'.*?\'\'\'|"(?:\\.|[^"\\\n])*"|\'[^\'\n]*\'|#[^\n]*|[\[\]{}]',
+                          re.DOTALL)
+
+
+def nesting_error(text: str, path: Path, limit: int = MAX_NESTING) -> ConfigError | None:
+    """A located error if arrays or inline tables in ``text`` nest deeper than ``limit``
+    (tomllib parses them recursively: a few hundred levels exhaust Python's stack).  A scan
+    of strings, comments and brackets only; the TOML grammar itself is tomllib's job."""
+    depth = 0
+    for m in _NEST_TOKENS.finditer(text):
+        tok = m.group()
+        if tok in "[{":
+            depth += 1
+            if depth > limit:
+                line = text.count("\n", 0, m.start()) + 1
+                col = m.start() - (text.rfind("\n", 0, m.start()) + 1) + 1
+                return ConfigError(f"arrays or inline tables nested more than {limit} levels deep",
+                                   where=f"{path}:{line}:{col}",
+                                   hint="a study file needs a few levels at most; check for a runaway bracket")
+        elif tok in "]}":
+            depth = max(depth - 1, 0)
+    return None
+
+
+def _depth_error(data: dict, path: Path, limit: int = MAX_NESTING) -> ConfigError | None:
+    """A located error if the parsed tables (dotted keys and headers included) nest deeper
+    than ``limit``; walked without recursion."""
+    stack: list[tuple[object, tuple[str, ...]]] = [(data, ())]
+    while stack:
+        value, keys = stack.pop()
+        if len(keys) > limit:
+            shown = ".".join(keys[:4]) + "..."
+            return ConfigError(f"tables nested more than {limit} levels deep", where=f"{path} [{shown}]",
+                               hint="a study file needs a few levels at most")
+        if isinstance(value, dict):
+            stack.extend((v, (*keys, str(k))) for k, v in value.items())
+        elif isinstance(value, list):
+            stack.extend((v, (*keys, f"[{i}]")) for i, v in enumerate(value))
+    return None
+
+
 def load_toml(path: Path) -> dict:
-    """Read a TOML file; a syntax error becomes a ConfigError with file and line."""
+    """Read a TOML file; a syntax error becomes a ConfigError with file and line.  Only a
+    regular file of at most ``MAX_CONFIG_BYTES`` is read (not a FIFO, a device, a folder),
+    nested at most ``MAX_NESTING`` levels deep."""
+    from graybox.files import read_regular_file
+
+    raw = read_regular_file(path, what="config file", max_bytes=MAX_CONFIG_BYTES, error=ConfigError)
     try:
-        text = path.read_bytes()
-    except FileNotFoundError:
-        raise ConfigError(f"config file not found: {path}") from None
-    except OSError as exc:
-        raise ConfigError(f"cannot read config file {path}: {exc.strerror}") from None
-    try:
-        return tomllib.loads(text.decode("utf-8"))
+        text = raw.decode("utf-8")
     except UnicodeDecodeError as exc:
         raise ConfigError(f"{path}: not UTF-8 text (byte {exc.start})", hint="save the config as UTF-8") from None
+    deep = nesting_error(text, path)
+    if deep is not None:
+        raise deep
+    try:
+        data = tomllib.loads(text)
+    except RecursionError:  # a nesting the scan did not see (it errs on the side of tomllib's grammar)
+        raise ConfigError(f"{path}: nested too deeply to read",
+                          hint=f"a study file nests at most {MAX_NESTING} levels") from None
     except tomllib.TOMLDecodeError as exc:
         msg = str(exc)
         hint = None
         if "overwrite" in msg.lower() or "duplicate" in msg.lower():
             hint = "a key or table is given twice; a state has exactly one rate equation"
         raise ConfigError(f"{path}: TOML syntax error: {msg}", hint=hint) from None
+    deep = _depth_error(data, path)
+    if deep is not None:
+        raise deep
+    return data
 
 
 @dataclass(frozen=True)
@@ -161,6 +217,8 @@ class Table:
             return value
         if isinstance(value, bool) or not isinstance(value, (int, float)):
             raise self.error(key, f"must be a number, got {value!r}")
+        if isinstance(value, int) and abs(value) > 2**63 - 1:  # TOML integers are 64-bit; tomllib reads any
+            raise self.error(key, f"must fit in 64 bits, got {value}", hint="TOML integers are 64-bit")
         if integer and not float(value).is_integer():
             raise self.error(key, f"must be a whole number, got {value!r}")
         if finite and not math.isfinite(value):

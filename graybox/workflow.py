@@ -191,17 +191,18 @@ def fit_study(config: str | Path, out: str | Path, *, force: bool = False, echo:
     from graybox.runs.folder import check_target
 
     check_target(out.absolute(), force)
-    study = with_seed(load_study(config, overrides), seed)
-    from graybox.posterior import predictive_bands, priors_from_spec, run_posterior, sampler_settings
+    study = with_seed(load_study(config, overrides, sample=sample, sampler_options=sampler_options), seed)
+    from graybox.posterior import predictive_bands, run_posterior
+    from graybox.posterior.config import expand_priors
 
-    sampling = sampler_settings(study.sampling, sampler_options)
-    do_sample = sampling.enabled if sample is None else bool(sample)
+    sampling = study.sampler  # parsed and checked by load_study, with this run's sample decision
+    do_sample = sampling.enabled
     for w in study.spec.warnings:
         echo(f"warning: {w}")
     stages: dict[str, float] = {}
     mark = time.perf_counter()
     prepared = prepare(study)
-    priors = priors_from_spec(study.spec, prepared.problem, study.path) if do_sample else None
+    priors = expand_priors(study.priors, study.spec, prepared.problem) if do_sample else None
     for name, rep in prepared.reports.items():
         echo(rep.summary())
     windows = informative_windows(study, prepared, echo)
@@ -304,13 +305,19 @@ def informative_windows(study: Study, prepared: Prepared, echo: Echo) -> list:
     return scores
 
 
-def check_study(config: str | Path, *, echo: Echo = print) -> int:
+def check_study(config: str | Path, *, echo: Echo = print, sample: bool | None = None,
+                sampler_options: dict | None = None) -> int:
     """Model and data checks without fitting, then the informative windows; 0 when a fit
-    could run, 2 (with the reasons printed) when it could not."""
+    could run, 2 (with the reasons printed) when it could not.
+
+    The study is loaded exactly as ``fit_study`` loads it (``sample`` and ``sampler_options``
+    as there), so every error the study file alone can cause is raised here with the same
+    message; sampling on means the priors were checked for sampling too."""
     from graybox.data import check_experiment
 
-    study = load_study(config)
+    study = load_study(config, sample=sample, sampler_options=sampler_options)
     echo(study.spec.describe())
+    echo(sampling_text(study, sample))
     for w in study.spec.warnings:
         echo(f"warning: {w}")
     engine = Engine(study.spec, study.engine, study.tol)
@@ -327,6 +334,15 @@ def check_study(config: str | Path, *, echo: Echo = print) -> int:
         return 2
     echo(f"the checks passed: a fit can run ({len(study.experiments)} experiment(s))")
     return 0
+
+
+def sampling_text(study: Study, sample: bool | None) -> str:
+    """One line: whether a fit would sample, who decided, and what was checked for it."""
+    who = "the study's [sampling] enabled, default true" if sample is None else ("--no-sample" if not sample else "the caller")
+    if study.sampler.enabled:
+        return (f"sampling: on ({who}); sampler settings and priors checked for sampling "
+                f"(a uniform prior needs finite bounds)")
+    return f"sampling: off ({who}); priors checked, except that a uniform prior may have infinite bounds"
 
 
 DEMO = "storage_vessel"

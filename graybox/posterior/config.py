@@ -34,6 +34,12 @@ SAMPLING_KEYS = ("enabled", "walkers", "max_steps", "check_every", "seed", "min_
                  "band_draws", "progress", "moves")
 MOVES = ("differential", "stretch")
 PROGRESS_CHOICES = ("auto", True, False)
+# Upper limits: far above any useful run, low enough that a typo (a walker count in the
+# millions) is refused at once instead of exhausting memory minutes into the run.  The chain
+# alone holds walkers x steps x dimension numbers of 8 bytes.
+LIMITS = {"walkers": 10_000, "max_steps": 1_000_000, "check_every": 1_000_000, "band_draws": 100_000,
+          "seed": 2**63 - 1}
+MAX_WALKER_STEPS = 50_000_000  # walkers x max_steps: 400 MB of chain per sampled quantity
 
 
 @dataclass(frozen=True)
@@ -48,7 +54,7 @@ class SamplerSettings:
     min_ess: float = 400.0
     rhat_max: float = 1.01
     tau_factor: float = 50.0
-    tau_rtol: float = 0.01  # the autocorrelation estimate must be stable within this over the last check
+    tau_rtol: float = 0.05  # floor of the bound on tau's change between checks (the bound follows tau's noise)
     band_draws: int = 400
     progress: str | bool = "auto"
     moves: str = "differential"
@@ -72,6 +78,9 @@ def sampler_settings(table: Table, overrides: dict | None = None) -> SamplerSett
     for key, minimum in (("walkers", 2), ("max_steps", 1), ("check_every", 1), ("seed", 0), ("band_draws", 10)):
         if key in table:
             values[key] = int(table.number(key, integer=True, minimum=minimum))
+            if values[key] > LIMITS[key]:
+                raise table.error(key, f"must be at most {LIMITS[key]:,}, got {values[key]:,}",
+                                  hint=_LIMIT_HINTS.get(key))
     if "min_ess" in table:
         values["min_ess"] = table.number("min_ess", positive=True)
     if "tau_factor" in table:
@@ -91,18 +100,43 @@ def sampler_settings(table: Table, overrides: dict | None = None) -> SamplerSett
     if "walkers" in values and values["walkers"] % 2:
         raise table.error("walkers", f"must be even (the ensemble is updated in two halves), got {values['walkers']}")
     st = replace(st, **values)
+    _check_chain_size(st, table)
     return apply_overrides(st, overrides or {})
 
 
+def _check_chain_size(st: SamplerSettings, table: Table) -> None:
+    """Refuse walkers x max_steps above ``MAX_WALKER_STEPS`` (located at the key ``table`` gives)."""
+    if st.walkers is None or st.walkers * st.max_steps <= MAX_WALKER_STEPS:
+        return
+    key = "walkers" if "walkers" in table else "max_steps"
+    raise table.error(key, f"walkers x max_steps = {st.walkers:,} x {st.max_steps:,} is more than the "
+                           f"{MAX_WALKER_STEPS:,} allowed (the chain would not fit in memory)",
+                      hint="fewer walkers or fewer steps: 32 to 100 walkers and 20,000 steps are typical")
+
+
+_LIMIT_HINTS = {"walkers": "32 to 100 walkers are typical; more rarely helps (the default: max(32, 4 x dimension))",
+                "max_steps": "20,000 steps are typical; a run that needs far more is better reparametrised"}
+
+
 def apply_overrides(st: SamplerSettings, overrides: dict) -> SamplerSettings:
-    """Replace settings by the given non-None overrides, checked like the table's keys."""
+    """Replace settings by the given non-None overrides, checked like the table's keys; an
+    error names the command-line option (``walkers`` -> ``--walkers``)."""
     given = {k: v for k, v in overrides.items() if v is not None}
     for key in given:
         if key not in SAMPLING_KEYS:
             raise SampleError(f"unknown sampler option '{key}'", hint="options: " + ", ".join(SAMPLING_KEYS))
+    if not given:
+        return st
     table = Table(given, ("sampling (command-line options)",))
-    checked = sampler_settings(table) if given else SamplerSettings()
-    return replace(st, **{k: getattr(checked, k) for k in given})
+    try:
+        checked = sampler_settings(table)
+        merged = replace(st, **{k: getattr(checked, k) for k in given})
+        _check_chain_size(merged, table)
+    except ConfigError as exc:
+        key = exc.where.rsplit("key '", 1)[-1].rstrip("'") if exc.where and "key '" in exc.where else None
+        where = f"command-line option --{key.replace('_', '-')}" if key else exc.where
+        raise ConfigError(exc.message, where=where, hint=exc.hint) from None
+    return merged
 
 
 # -- priors ---------------------------------------------------------------------------------------------
@@ -111,24 +145,39 @@ def apply_overrides(st: SamplerSettings, overrides: dict) -> SamplerSettings:
 def priors_from_spec(spec, problem, file: Path | None = None) -> list[Prior]:
     """One prior per entry of ``problem.free`` (local parameters get theirs once per
     experiment), validated; ``file`` (the study file) only sharpens error locations."""
+    return expand_priors(parameter_priors(spec, file), spec, problem)
+
+
+def parameter_priors(spec, file: Path | None = None, *, proper: bool = True) -> dict[str, Prior]:
+    """The prior of every free parameter (by name), from the study file alone: what
+    ``graybox.config.load_study`` checks before any data is read.
+
+    ``proper``: sampling will run, so a uniform prior (the default) needs finite bounds.
+    Without it (sampling off) such a prior is recorded as flat (improper) instead of refused;
+    every other check (kind, keys, scales, centre and guess inside the bounds) runs either way."""
     for p in spec.parameters:
         if p.fixed and p.prior is not None:
             t = Table({"prior": p.prior}, ("parameters", p.name), file)
             raise SampleError(f"parameter '{p.name}' is fixed, so it cannot have a prior", where=t.where("prior"),
                               hint="remove the prior, or set fixed = false to estimate it")
-    by_name = {p.name: _prior_of(p, file) for p in spec.parameters if not p.fixed}
+    return {p.name: _prior_of(p, file, proper) for p in spec.parameters if not p.fixed}
+
+
+def expand_priors(base: dict[str, Prior], spec, problem) -> list[Prior]:
+    """One prior per entry of ``problem.free``: a parameter's from ``base`` (see
+    :func:`parameter_priors`), renamed per experiment for local parameters; an estimated
+    initial state's flat over its initial bounds."""
     out = []
     for f in problem.free:
         if f.kind == "parameter":
-            base = by_name[spec.parameters[f.index].name]
-            out.append(replace(base, name=f.name))
+            out.append(replace(base[spec.parameters[f.index].name], name=f.name))
         else:
             finite = math.isfinite(f.lower) and math.isfinite(f.upper)
             out.append(Prior(f.name, KIND_UNIFORM if finite else KIND_FLAT, f.lower, f.upper))
     return out
 
 
-def _prior_of(p, file: Path | None) -> Prior:
+def _prior_of(p, file: Path | None, proper: bool = True) -> Prior:
     raw = p.prior if p.prior is not None else {"kind": KIND_UNIFORM}
     t = Table(dict(raw), ("parameters", p.name, "prior"), file)
     try:
@@ -144,9 +193,12 @@ def _prior_of(p, file: Path | None) -> Prior:
     lo, hi = float(p.lower), float(p.upper)
     if kind == KIND_UNIFORM:
         if not (math.isfinite(lo) and math.isfinite(hi)):
+            if not proper:
+                return Prior(p.name, KIND_FLAT, lo, hi, p.log_scale)
             raise SampleError(f"parameter '{p.name}' has a uniform prior (the default) but its bounds "
                               f"[{lo:g}, {hi:g}] are not both finite", where=t.where("kind" if "kind" in t else None),
-                              hint="give finite bounds = [low, high], or a normal, lognormal or halfnormal prior")
+                              hint="give finite bounds = [low, high], or a normal, lognormal or halfnormal prior "
+                                   "(or turn sampling off: [sampling] enabled = false, or --no-sample)")
         return Prior(p.name, kind, lo, hi, p.log_scale)
     if kind == KIND_NORMAL:
         prior = Prior(p.name, kind, lo, hi, p.log_scale, values["mean"], values["sd"])

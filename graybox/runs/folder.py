@@ -32,13 +32,31 @@ def sha256_file(path: Path, chunk: int = 1 << 20) -> str:
     return h.hexdigest()
 
 
+WRITABLE_HINT = "choose a writable folder for --out (not under /proc or /sys, not on a read-only file system)"
+
+
 def check_target(out: Path, force: bool) -> None:
+    """Refuse a run folder that could not be built, before any computation: an existing one
+    (without ``force``), a missing or non-folder parent, or a parent where nothing can be
+    created (read-only or pseudo file systems: a folder is made and removed there to know)."""
     if out.exists() and not force:
         raise RunError(f"the run folder {out} already exists", hint="choose another --out or add --force to replace it")
     if out.exists() and not out.is_dir():
         raise RunError(f"{out} exists and is not a folder", hint="choose another --out")
     if not out.parent.exists():
         raise RunError(f"the parent folder {out.parent} does not exist", hint="create it first or choose another --out")
+    if not out.parent.is_dir():
+        raise RunError(f"cannot create the run folder {out}: {out.parent} is not a folder", hint=WRITABLE_HINT)
+    try:
+        os.rmdir(tempfile.mkdtemp(prefix=f".{out.name}.probe-", dir=out.parent))
+    except OSError as exc:
+        raise RunError(f"cannot create the run folder {out}: {exc.strerror or exc}", hint=WRITABLE_HINT) from None
+
+
+def _write_error(out: Path, exc: OSError) -> RunError:
+    """An OSError while building the run folder, as a user error naming the file."""
+    what = f" ({exc.filename})" if exc.filename else ""
+    return RunError(f"cannot write the run folder {out}: {exc.strerror or exc}{what}", hint=WRITABLE_HINT)
 
 
 @contextmanager
@@ -46,20 +64,32 @@ def building(out: Path, force: bool = False) -> Iterator[Path]:
     """Yield a temporary folder next to ``out``; on success rename it to ``out``."""
     out = Path(out).absolute()
     check_target(out, force)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
+    try:
+        tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
+    except OSError as exc:
+        raise _write_error(out, exc) from None
     umask = os.umask(0)
     os.umask(umask)
-    os.chmod(tmp, 0o777 & ~umask)  # mkdtemp makes it private; a run folder is for colleagues
     try:
+        os.chmod(tmp, 0o777 & ~umask)  # mkdtemp makes it private; a run folder is for colleagues
         yield tmp
+    except OSError as exc:  # a full disk, a file system that went read-only, ...
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise _write_error(out, exc) from None
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
     old = None
-    if out.exists():
-        old = out.parent / f".{out.name}.old-{os.getpid()}"
-        os.replace(out, old)
-    os.replace(tmp, out)
+    try:
+        if out.exists():
+            old = out.parent / f".{out.name}.old-{os.getpid()}"
+            os.replace(out, old)
+        os.replace(tmp, out)
+    except OSError as exc:
+        shutil.rmtree(tmp, ignore_errors=True)
+        if old is not None and old.exists() and not out.exists():
+            os.replace(old, out)  # the old run folder stays where it was
+        raise _write_error(out, exc) from None
     if old is not None:
         shutil.rmtree(old, ignore_errors=True)
 
