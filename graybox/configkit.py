@@ -40,6 +40,9 @@ def _find_line(path: Path | None, table: tuple[str, ...], key: str | None) -> in
     header_re = re.compile(r"^\s*\[\[?\s*([^\]]+?)\s*\]\]?\s*(#.*)?$")
     current: tuple[str, ...] = ()
     header_line = None
+    sub_header = None  # [table.key] when key names a table
+    inline_line = None  # parent = { ... } when the table is written inline
+    parent_header = None  # the last resort for a table not written at all
     best = None
     dotted = ".".join(table)
     for i, line in enumerate(lines, start=1):
@@ -48,10 +51,17 @@ def _find_line(path: Path | None, table: tuple[str, ...], key: str | None) -> in
             current = tuple(p.strip().strip('"') for p in m.group(1).split("."))
             if current == table:
                 header_line = i
-            continue
-        if key is None:
+            if table and current == table[:-1]:
+                parent_header = parent_header or i
+            if key is not None and current[:len(table) + 1] == (*table, key):
+                sub_header = sub_header or i
             continue
         stripped = line.strip()
+        if (table and inline_line is None and current == table[:-1]
+                and re.match(rf'^"?{re.escape(table[-1])}"?\s*=', stripped)):
+            inline_line = i
+        if key is None:
+            continue
         # key = ... inside [table], or table.key = ..., or inline table on the parent
         if current == table and re.match(rf'^"?{re.escape(key)}"?\s*=', stripped):
             return i
@@ -60,7 +70,7 @@ def _find_line(path: Path | None, table: tuple[str, ...], key: str | None) -> in
             and re.search(rf'\b{re.escape(key)}\s*=', stripped)
         ):
             best = best or i
-    return best or header_line
+    return best or sub_header or header_line or inline_line or parent_header
 
 
 MAX_CONFIG_BYTES = 1 << 20  # a study file is a few kilobytes; 1 MiB is far beyond any real one

@@ -195,8 +195,9 @@ def _prior_of(p, file: Path | None, proper: bool = True) -> Prior:
         if not (math.isfinite(lo) and math.isfinite(hi)):
             if not proper:
                 return Prior(p.name, KIND_FLAT, lo, hi, p.log_scale)
+            where = t.where("kind" if p.prior is not None else None)  # no prior written: the parent's line
             raise SampleError(f"parameter '{p.name}' has a uniform prior (the default) but its bounds "
-                              f"[{lo:g}, {hi:g}] are not both finite", where=t.where("kind" if "kind" in t else None),
+                              f"[{lo:g}, {hi:g}] are not both finite", where=where,
                               hint="give finite bounds = [low, high], or a normal, lognormal or halfnormal prior "
                                    "(or turn sampling off: [sampling] enabled = false, or --no-sample)")
         return Prior(p.name, kind, lo, hi, p.log_scale)
