@@ -183,7 +183,7 @@ def test_files_in_any_order_are_not_rows_out_of_order(tmp_path):
     """Files listed late-first are sorted as wholes: no row of a file is out of order."""
     write(tmp_path, "b.csv", "time,TI_101,QI_7,FI_3\n2026-01-02T00:00:00Z,30,1,1\n2026-01-02T00:01:00Z,31,1,1\n")
     write(tmp_path, "a.csv", "time,TI_101,QI_7,FI_3\n2026-01-01T00:00:00Z,20,1,1\n2026-01-01T00:01:00Z,21,1,1\n")
-    rec, rep = load(tmp_path, {"files": ["b.csv", "a.csv"], "time_column": "time", "tags": TAGS, "max_gap": "off"})
+    rec, rep = load(tmp_path, {"files": ["b.csv", "a.csv"], "time_column": "time", "tags": TAGS, "max_gap": "2 day"})
     assert rep.tag("T").out_of_order == 0
     np.testing.assert_array_equal(rec.outputs["T"].values, [20, 21, 30, 31])
 
