@@ -39,14 +39,17 @@ def model_from_function(
     rhs: Callable,
     outputs: Mapping[str, dict | str] | None = None,
     initial: Mapping[str, str | float] | None = None,
+    time_units: str = "s",
 ) -> ModelSpec:
-    """A checked spec whose state rates come from ``rhs`` (see the module docstring)."""
+    """A checked spec whose state rates come from ``rhs`` (see the module docstring); the
+    rates it returns are per ``time_units`` (seconds by default)."""
     if not callable(rhs):
         raise ModelError("rhs must be a function rhs(x, u, p) returning the state rates")
     initial = dict(initial or {})
     # Rates are placeholders (zero) for the structural checks; the function replaces them.
     model = {
         "name": name,
+        "time_units": time_units,
         "states": {s: {"units": u, "rate": "0", **({"initial": initial[s]} if s in initial else {})}
                    for s, u in states.items()},
         "inputs": {k: {"units": v} for k, v in inputs.items()},
@@ -59,11 +62,13 @@ def model_from_function(
                        for s in base.states)
     warnings = tuple(w for w in base.warnings if "not used" not in w) + (PYTHON_NOTE,)
     return ModelSpec(base.name, states_def, base.inputs, base.parameters, base.constants, base.derived,
-                     base.outputs, warnings, python_rhs=wrapped)
+                     base.outputs, warnings, python_rhs=wrapped, time_units=base.time_units,
+                     time_seconds=base.time_seconds)
 
 
 def _wrap(rhs: Callable, spec: ModelSpec) -> Callable:
     xs, us, ps = spec.state_names, spec.input_names, spec.parameter_names
+    seconds = spec.time_seconds  # the function's rates are per time_units; the engines want per second
 
     def f(x: np.ndarray, u: np.ndarray, p: np.ndarray, out: np.ndarray) -> None:
         xd = {n: x[i] for i, n in enumerate(xs)}
@@ -78,6 +83,6 @@ def _wrap(rhs: Callable, spec: ModelSpec) -> Callable:
         if len(rates) != len(xs):
             raise ModelError(f"the Python right-hand side returned {len(rates)} rates for {len(xs)} states")
         for i, r in enumerate(rates):
-            out[i] = r
+            out[i] = r if seconds == 1.0 else np.asarray(r) / seconds
 
     return f

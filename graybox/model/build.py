@@ -14,6 +14,7 @@ Table layout (all names are the user's)::
 
     [model]
     name = "storage_vessel"
+    time_units = "s"          the unit each rate is written per: "s" (default), "min", "h", ...
     [model.states.T]          units = "degC", rate = "...", initial = "measured"
     [model.inputs]            Q = { units = "W" }, T_room = { units = "degC", hold = "linear" }
     [model.constants]         C = { value = 4.2e6, units = "J/K" }
@@ -32,7 +33,18 @@ import numpy as np
 
 from graybox.configkit import Table
 from graybox.errors import ModelError
-from graybox.model.expr import Sym, is_valid_symbol_name, parse, symbols
+from graybox.model.expr import (
+    BinOp,
+    FoldError,
+    Num,
+    Sym,
+    depth_and_size,
+    fold_value,
+    is_valid_symbol_name,
+    parse,
+    symbols,
+    to_text,
+)
 from graybox.model.spec import (
     INITIAL_MEASURED,
     INITIAL_MODES,
@@ -47,14 +59,19 @@ from graybox.model.spec import (
     ParameterDef,
     StateDef,
 )
-from graybox.model.units import U, UnitChecker, check_equal, parse_units, rate_units
+from graybox.model.units import U, UnitChecker, check_equal, parse_time_units, parse_units, rate_units
 
-MODEL_KEYS = ("name", "states", "inputs", "constants", "derived", "outputs")
+MODEL_KEYS = ("name", "time_units", "states", "inputs", "constants", "derived", "outputs")
 STATE_KEYS = ("units", "rate", "initial", "initial_bounds")
 INPUT_KEYS = ("units", "hold")
 CONSTANT_KEYS = ("value", "units")
 DERIVED_KEYS = ("expr", "units")
 OUTPUT_KEYS = ("expr", "units")
+#: Limits on an equation with its derived quantities substituted (every tree walk after the
+#: checks recurses on the depth: derivatives of an equation nest deeper than it does).
+MAX_INLINED_DEPTH = 120
+MAX_INLINED_SIZE = 100_000
+
 PARAMETER_KEYS = ("guess", "bounds", "lower", "upper", "units", "fixed", "scope", "prior", "log_scale")
 
 
@@ -101,6 +118,8 @@ def build_spec(model: Table, parameters: Table) -> ModelSpec:
     for name in parameters.keys():
         claim(name, "a parameter", parameters)
 
+    time_text = model.string("time_units", "s")
+    time_unit, time_seconds = parse_time_units(time_text, where=model.where("time_units"))
     units: dict[str, U] = {}
     states_raw = []
     for name in states_t.keys():
@@ -108,7 +127,7 @@ def build_spec(model: Table, parameters: Table) -> ModelSpec:
         t.check_keys(STATE_KEYS)
         if "rate" not in t:
             raise ModelError(f"state '{name}' has no rate equation", where=t.where(),
-                             hint=f"add rate = \"...\" (its time derivative, in its units per second)")
+                             hint=f"add rate = \"...\" (its time derivative, in its units per {time_text})")
         units[name] = parse_units(t.string("units", ""), where=t.where("units"))
         states_raw.append((name, t))
 
@@ -170,6 +189,8 @@ def build_spec(model: Table, parameters: Table) -> ModelSpec:
             raise ModelError("the model has no states and no outputs", where=model.where(),
                              hint="add [model.outputs] (a static regression) or [model.states]")
 
+    _check_inlined_size(order, derived_raw, state_trees, output_raw)
+
     # Units: derived quantities in dependency order, then rates and outputs.
     derived = []
     for name in order:
@@ -199,7 +220,9 @@ def build_spec(model: Table, parameters: Table) -> ModelSpec:
     states = []
     for name, t, text, tree in state_trees:
         u = UnitChecker(units, where=t.where("rate")).infer(tree)
-        check_equal(u, rate_units(units[name]), f"the rate of state '{name}'", t.where("rate"))
+        check_equal(u, rate_units(units[name], time_unit), f"the rate of state '{name}'", t.where("rate"),
+                    hint=f"rates are written per {time_text} ([model] time_units); check the units declared "
+                         "for each symbol in the equation")
         initial = _initial(t, name)
         if initial == "default":
             initial = INITIAL_MEASURED if name in measured else INITIAL_STEADY
@@ -217,11 +240,76 @@ def build_spec(model: Table, parameters: Table) -> ModelSpec:
         constants=tuple(constants),
         derived=tuple(derived),
         outputs=tuple(outputs),
+        time_units=time_text,
+        time_seconds=time_seconds,
     )
+    _check_inlined_constants(spec, state_trees, output_raw)
     used = spec.used_symbols()
     warnings = [f"parameter '{p.name}' is not used by any equation" for p in params if p.name not in used]
     warnings += [f"input '{u.name}' is not used by any equation" for u in inputs if u.name not in used]
     return dataclasses.replace(spec, warnings=tuple(warnings))
+
+
+def _check_inlined_size(order, derived_raw, state_trees, output_raw) -> None:
+    """Depth and size of each equation with its derived quantities substituted, measured on
+    the parsed trees before anything is inlined."""
+    known: dict[str, tuple[int, int]] = {}
+    checks = []
+    for name in order:
+        t, _, tree = derived_raw[name]
+        known[name] = depth_and_size(tree, known)
+        checks.append((f"derived quantity '{name}'", known[name], t.where("expr")))
+    for name, t, _, tree in state_trees:
+        checks.append((f"the rate of state '{name}'", depth_and_size(tree, known), t.where("rate")))
+    for name, t, _, tree in output_raw:
+        checks.append((f"output '{name}'", depth_and_size(tree, known), t.where("expr") if "expr" in t else t.where()))
+    for what, (depth, size), where in checks:
+        if depth > MAX_INLINED_DEPTH:
+            raise ModelError(f"with its derived quantities substituted, {what} nests {depth} levels deep; "
+                             f"the limit is {MAX_INLINED_DEPTH}", where=where,
+                             hint="shorten the chain of derived quantities it uses, or simplify them")
+        if size > MAX_INLINED_SIZE:
+            raise ModelError(f"with its derived quantities substituted, {what} has {size:,} parts; "
+                             f"the limit is {MAX_INLINED_SIZE:,}", where=where,
+                             hint="a derived quantity used many times inside another multiplies its size; "
+                                  "simplify the chain")
+
+
+def _check_inlined_constants(spec: ModelSpec, state_trees, output_raw) -> None:
+    """With [model.constants] substituted, no operation between numbers may lack a finite
+    value (``1/C`` with C = 0, ``C**-1`` with C = 0, ``C1*C2`` beyond 1.8e308): the simplifier
+    leaves such an operation unfolded; nothing else may divide by a constant zero."""
+    located = [(f"the rate of state '{n}'", tree, t.where("rate"))
+               for (n, t, _, _), tree in zip(state_trees, (spec.inline(s.rate) for s in spec.states))]
+    located += [(f"output '{n}'", tree, t.where("expr") if "expr" in t else t.where())
+                for (n, t, _, _), tree in zip(output_raw, spec.output_exprs)]
+    for what, tree, where in located:
+        seen: set[int] = set()
+        stack = [tree]
+        while stack:
+            n = stack.pop()
+            if id(n) in seen:
+                continue
+            seen.add(id(n))
+            stack.extend(n.children())
+            reason = _constant_fault(n)
+            if reason:
+                raise ModelError(f"with the constants substituted, {what} contains '{to_text(n)[:200]}', which {reason}",
+                                 where=where, hint="check the values under [model.constants]")
+
+
+def _constant_fault(n) -> str | None:
+    if not isinstance(n, BinOp) or not isinstance(n.right, Num):
+        return None
+    if isinstance(n.left, Num):
+        try:
+            fold_value(n.op, n.left.value, n.right.value)
+        except FoldError as exc:
+            return str(exc)
+        return None
+    if n.op == "/" and n.right.value == 0.0:
+        return "divides by zero"
+    return None
 
 
 def _unit_text(u: U) -> str:

@@ -9,6 +9,11 @@ written with ``repr`` of a float.  Two dialects:
 * ``"numpy"``: every variable may be an array over parameter sets; conditionals become
   ``np.where`` (both branches evaluated, the selected one kept: numpy error semantics);
 * ``"scalar"``: plain scalars, for the compiled (numba) core; conditionals are short-circuit.
+
+An operator between two numbers (one the simplifier left unfolded because it has no finite
+value, e.g. ``0.0/0.0`` in a derivative) is emitted as its IEEE value (``np.nan``,
+``np.inf``): as Python floats it would raise ZeroDivisionError or OverflowError, or give a
+complex number, at run time.
 """
 
 from __future__ import annotations
@@ -23,6 +28,22 @@ _NUMPY_FN = {
     "cosh": "np.cosh", "atan": "np.arctan", "min": "np.minimum", "max": "np.maximum",
 }
 DIALECTS = ("numpy", "scalar")
+
+
+def ieee_value(op: str, a: float, b: float) -> float:
+    """``a op b`` in IEEE double arithmetic (numpy's semantics: inf and nan, never raising)."""
+    import numpy as np
+
+    x, y = np.float64(a), np.float64(b)
+    with np.errstate(all="ignore"):
+        out = {"+": np.add, "-": np.subtract, "*": np.multiply, "/": np.divide, "**": np.power}[op](x, y)
+    return float(out)
+
+
+def _constant_binop(node: Node) -> str | None:
+    if isinstance(node, BinOp) and isinstance(node.left, Num) and isinstance(node.right, Num):
+        return literal(ieee_value(node.op, node.left.value, node.right.value))
+    return None
 
 
 def literal(value: float) -> str:
@@ -59,6 +80,10 @@ class Emitter:
             code = self.env[node.name]
             self._memo[node] = code
             return code
+        folded = _constant_binop(node)
+        if folded is not None:
+            self._memo[node] = folded
+            return folded
         rhs = self._expression(node)
         name = f"{self.prefix}{len(self._memo)}"
         self.lines.append(f"{name} = {rhs}")
@@ -96,7 +121,7 @@ class Emitter:
 
     def _inline(self, node: Node) -> str:
         """A nested expression without temporaries (for conditional branches)."""
-        if isinstance(node, (Num, Sym)) or node in self._memo:
+        if isinstance(node, (Num, Sym)) or node in self._memo or _constant_binop(node) is not None:
             return self.value(node)
         if isinstance(node, BinOp):
             return f"({self._inline(node.left)} {node.op} {self._inline(node.right)})"

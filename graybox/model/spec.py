@@ -13,7 +13,7 @@ from typing import Callable
 
 import numpy as np
 
-from graybox.model.expr import Node, Num, diff, substitute, symbols
+from graybox.model.expr import Node, Num, diff, div, substitute, symbols
 
 INITIAL_MEASURED = "measured"
 INITIAL_STEADY = "steady"
@@ -81,7 +81,9 @@ class OutputDef:
 @dataclass(frozen=True)
 class ModelSpec:
     """A checked model.  Equations are trees over states, inputs, parameters, constants and
-    derived quantities (derived in dependency order)."""
+    derived quantities (derived in dependency order).  Each state's rate equation is written
+    per ``time_units`` (``time_seconds`` seconds each); :attr:`rates` and every derivative
+    are per second, the time of records and engines."""
 
     name: str
     states: tuple[StateDef, ...]
@@ -92,6 +94,8 @@ class ModelSpec:
     outputs: tuple[OutputDef, ...]
     warnings: tuple[str, ...] = ()
     python_rhs: Callable | None = field(default=None, compare=False)  # power-user API
+    time_units: str = "s"
+    time_seconds: float = 1.0
 
     # -- names -------------------------------------------------------------------------------
     @property
@@ -140,8 +144,13 @@ class ModelSpec:
 
     @cached_property
     def rates(self) -> tuple[Node, ...]:
-        """Each state's rate over states, inputs and parameters only."""
-        return tuple(self.inline(s.rate) for s in self.states)
+        """Each state's rate per second, over states, inputs and parameters only: the rate as
+        written (per ``time_units``) divided by the seconds of that unit, here and only here."""
+        return tuple(self.per_second(self.inline(s.rate)) for s in self.states)
+
+    def per_second(self, rate: Node) -> Node:
+        """A rate written per ``time_units``, as a rate per second."""
+        return rate if self.time_seconds == 1.0 else div(rate, Num(float(self.time_seconds)))
 
     @cached_property
     def output_exprs(self) -> tuple[Node, ...]:
@@ -189,7 +198,7 @@ class ModelSpec:
                  f"{len(self.parameters)} parameter(s) ({sum(not p.fixed for p in self.parameters)} free), "
                  f"{len(self.outputs)} output(s)"]
         for s in self.states:
-            lines.append(f"  d{s.name}/dt = {s.rate_text}    [{s.units}/s], initial: {s.initial}")
+            lines.append(f"  d{s.name}/dt = {s.rate_text}    [{s.units}/{self.time_units}], initial: {s.initial}")
         for d in self.derived:
             lines.append(f"  {d.name} = {d.text}    [{d.units}]")
         for o in self.outputs:

@@ -15,7 +15,8 @@ Each symbol declares units.  The checker walks an expression tree and infers its
   a reading used as a factor (``E/(R*T)`` with ``T`` in degC) is an error, because the
   product depends on where the scale's zero sits.  Write such temperatures in K.
 
-Time in the model is in seconds: a state's rate must have the state's units per second.
+A state's rate has the state's units per the model's time unit (``[model] time_units``,
+seconds by default); the spec converts rates to per second once, for every engine.
 """
 
 from __future__ import annotations
@@ -228,14 +229,25 @@ class UnitChecker:
         return U(self.ureg.dimensionless)
 
 
-def rate_units(state: U) -> U:
-    """Units a state's time derivative must have: the state's units per second (a reading's
-    rate is a difference per second)."""
+def rate_units(state: U, time: U | None = None) -> U:
+    """Units a state's time derivative must have: the state's units per the model's time
+    unit, seconds unless given (a reading's rate is a difference per time unit)."""
     ureg = registry()
-    return U(ureg.Quantity(1.0, state.unit / ureg.second).units)
+    per = ureg.second if time is None else time.unit
+    return U(ureg.Quantity(1.0, state.unit / per).units)
 
 
-def check_equal(actual: U, expected: U, what: str, where: str) -> None:
+def parse_time_units(text: str, *, where: str = "") -> tuple[U, float]:
+    """The model's time unit (``"s"``, ``"min"``, ``"h"``, ...) and the seconds it lasts."""
+    u = parse_units(text, where=where)
+    seconds = _factor(u.unit, registry().second) if u.unit is not None and not u.offset else None
+    if seconds is None or not seconds > 0:
+        raise ModelError(f"time_units '{text}' is not a unit of time", where=where,
+                         hint="write \"s\", \"min\", \"h\" or \"day\"")
+    return u, seconds
+
+
+def check_equal(actual: U, expected: U, what: str, where: str, hint: str | None = None) -> None:
     """Raise unless ``actual`` equals ``expected`` with factor one (bare numbers pass)."""
     if actual.boolean:
         raise ModelError(f"{what} is a truth value, not a quantity", where=where)
@@ -245,7 +257,7 @@ def check_equal(actual: U, expected: U, what: str, where: str) -> None:
         f = _factor(actual.unit, expected.unit)
         extra = f" (same dimension, factor {f:.6g})" if f is not None else " (different dimensions)"
         raise ModelError(f"{what} is in {actual.text()} but must be in {expected.text()}{extra}", where=where,
-                         hint="check the units declared for each symbol in the equation")
+                         hint=hint or "check the units declared for each symbol in the equation")
     if actual.offset != expected.offset:
         raise ModelError(f"{what} is {'a reading' if actual.offset else 'a difference'} on a temperature scale "
                          f"but must be {'a reading' if expected.offset else 'a difference'}", where=where)
