@@ -294,8 +294,9 @@ def _check_inlined_constants(spec: ModelSpec, state_trees, output_raw) -> None:
             stack.extend(n.children())
             reason = _constant_fault(n)
             if reason:
-                raise ModelError(f"with the constants substituted, {what} contains '{to_text(n)[:200]}', which {reason}",
-                                 where=where, hint="check the values under [model.constants]")
+                raise ModelError(f"with the constants substituted and simplified, {what} contains "
+                                 f"'{to_text(n)[:200]}', which {reason}", where=where,
+                                 hint="check the equation and the values under [model.constants]")
 
 
 def _constant_fault(n) -> str | None:
