@@ -302,7 +302,7 @@ def fit_through_config(problem: NistProblem, start: int, folder: Path):
     from graybox.estimate.fit import fit
     from graybox.workflow import prepare
 
-    study = load_study(write_study(problem, start, folder))
+    study = load_study(write_study(problem, start, folder), sample=False)  # least squares only
     prepared = prepare(study)
     return study, prepared, fit(prepared.problem, study.fit)
 

@@ -67,7 +67,7 @@ def write_study(folder: Path, x: np.ndarray, y: np.ndarray) -> Path:
 @pytest.fixture(scope="module")
 def fitted(tmp_path_factory):
     x, y = invented_data()
-    study = load_study(write_study(tmp_path_factory.mktemp("ols"), x, y))
+    study = load_study(write_study(tmp_path_factory.mktemp("ols"), x, y), sample=False)  # least squares only
     res = fit(prepare(study).problem, study.fit)
     ols = sm.OLS(y, np.column_stack([np.ones_like(x), x, x**2])).fit()
     return res, ols
