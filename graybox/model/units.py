@@ -92,9 +92,15 @@ def same_units(a: U, b: U) -> bool:
     return f is not None and abs(f - 1.0) <= _REL_TOL
 
 
+def _short(node: Node, limit: int = 200) -> str:
+    """A term's text for a message, elided past ``limit`` characters."""
+    text = to_text(node)
+    return text if len(text) <= limit else text[:limit] + "..."
+
+
 def mismatch_message(left: Node, lu: U, right: Node, ru: U, context: str) -> str:
     f = _factor(lu.unit, ru.unit) if lu.unit is not None and ru.unit is not None else None
-    base = f"{context}: '{to_text(left)}' is in {lu.text()} but '{to_text(right)}' is in {ru.text()}"
+    base = f"{context}: '{_short(left)}' is in {lu.text()} but '{_short(right)}' is in {ru.text()}"
     if f is not None:
         return base + f" (same dimension, factor {f:.6g}: convert one side)"
     return base + " (different dimensions)"
@@ -162,7 +168,7 @@ class UnitChecker:
             if ua.boolean or ub.boolean:
                 self.fail(f"'{to_text(node)}' adds a truth value")
             if not same_units(ua, ub):
-                self.fail(mismatch_message(a, ua, b, ub, f"in '{to_text(node)}'"))
+                self.fail(mismatch_message(a, ua, b, ub, f"in '{_short(node)}'"))
             unit = ua.unit if ua.unit is not None else ub.unit
             if op == "+":
                 if ua.offset and ub.offset:
