@@ -11,9 +11,7 @@ import sys
 import traceback
 
 from graybox import __version__
-from graybox.errors import GrayboxError
-
-EXIT_OK, EXIT_INTERNAL, EXIT_USER = 0, 1, 2
+from graybox.errors import EXIT_INTERNAL, EXIT_OK, EXIT_USER, GrayboxError
 
 
 class _Parser(argparse.ArgumentParser):

@@ -3,6 +3,10 @@ and *what to do* (a hint).  The CLI prints them as one ``error: ...`` line, exit
 
 from __future__ import annotations
 
+# Exit codes of the command line and of batch jobs: 0 success; 2 a user error (one of the
+# classes below, printed without a traceback); 1 an internal failure (a bug).
+EXIT_OK, EXIT_INTERNAL, EXIT_USER = 0, 1, 2
+
 
 class GrayboxError(Exception):
     """A user error: bad config, model, data or settings.  Never an internal bug."""

@@ -40,8 +40,7 @@ def run_spec(spec: dict) -> None:
 
 def main(argv: list[str] | None = None) -> int:
     argv = sys.argv[1:] if argv is None else argv
-    from graybox.cli import EXIT_INTERNAL, EXIT_OK, EXIT_USER
-    from graybox.errors import GrayboxError
+    from graybox.errors import EXIT_INTERNAL, EXIT_OK, EXIT_USER, GrayboxError
 
     try:
         spec = json.loads(Path(argv[0]).read_text(encoding="utf-8"))
