@@ -5,20 +5,25 @@ Order of work per tag (each step a small function below):
 
 1. every file's rows of the tag, in recorded order (files in the order given);
 2. time stamps resolved per file in recorded order (see timestamps.py); rows whose wall time
-   does not exist are masked with that reason;
+   does not exist are masked with that reason, and each clock change met is reported;
 3. selected windows kept, excluded windows dropped, samples before the experiment's start
    dropped (counted; the start: see timestamps.experiment_start);
-4. sorted by time (stably; rows stamped earlier than the row before them in their file are
+4. values that are not numbers (NaN) or infinite masked and counted, each its own reason;
+5. sorted by time (stably; rows stamped earlier than the row before them in their file are
    counted and the first named); exact duplicates (same time, value and flag) dropped; of
    conflicting duplicates (same time, another value) the first recorded is kept, the others
    are counted and one example is named;
-5. report-by-exception tags: held repeats dropped;
-6. quality flag, valid range (in the tag's own units), units into the model's, stuck, spikes.
+6. on the rows as logged: quality flag, valid range (in the tag's own units), stuck runs
+   (measured outputs by default, see quality.py), and the tag's usual interval;
+7. report-by-exception tags: held repeats (unmasked rows equal to the row before) dropped;
+8. units into the model's, spikes.
 
 Outputs keep every sample with a mask; inputs lose their masked samples (the last good
-value holds).  Input gaps longer than the gap limit, excluded windows and the spaces between
-selected windows split the record into segments; a segment without a valid observation of
-every output is dropped (and noted).
+value holds).  Input gaps longer than the gap limit (see gaps.py: by default "auto", from
+each tag's usual interval), excluded windows and the spaces between selected windows split
+the record into segments; a segment without a valid observation of every output is dropped
+(and noted).  Every gap over a limit, every stuck run and every clock change is a warning in
+the report (``DataReport.warnings``), which `graybox check` and `graybox fit` print.
 """
 
 from __future__ import annotations
@@ -33,13 +38,15 @@ from typing import Mapping
 import numpy as np
 
 from graybox.data.config import ROLE_INPUT, DataSpec, SymbolInfo, TagSpec, parse_data_table
-from graybox.data.quality import (REASON_NONEXISTENT, REASON_QUALITY, REASON_RANGE, REASON_SPIKE, REASON_STUCK,
-                                  bad_quality, count_first_reasons, held_repeats, out_of_range, spikes, stuck)
+from graybox.data.gaps import Gap, GapRule, gap_dict, gap_rule, gap_warning, gaps_over
+from graybox.data.quality import (REASON_INF, REASON_NAN, REASON_NONEXISTENT, REASON_QUALITY, REASON_RANGE,
+                                  REASON_SPIKE, REASON_STUCK, bad_quality, count_first_reasons, held_repeats,
+                                  out_of_range, spikes, stuck_limit, stuck_runs)
 from graybox.data.readers import QualityVocab, RawTable, Rows, file_sha256, read_table, row_at, row_count, take_rows
 from graybox.data.record import InputSeries, OutputSeries, Record, Segment
-from graybox.data.report import DataReport, SegmentReport, TagReport
-from graybox.data.timestamps import (NAT, Place, backward_steps, describe_instant, experiment_start, first_stamp,
-                                     parse_stamps, require_time_axis)
+from graybox.data.report import DataReport, SegmentReport, TagReport, duration_text
+from graybox.data.timestamps import (NAT, ClockChange, Place, backward_steps, describe_instant, experiment_start,
+                                     first_stamp, parse_stamps, require_time_axis)
 from graybox.data.units import Conversion, tag_conversion
 from graybox.errors import DataError
 
@@ -58,6 +65,7 @@ class Chunk:
     nonexistent: np.ndarray | None  # None: no stamp of the file fell into a spring-forward gap
     values: np.ndarray
     quality: np.ndarray | None
+    nan: np.ndarray | None = None  # True where the cell held a NaN value (None: none did)
 
     def number(self, i: int) -> int:
         """The line/row number of this chunk's sample ``i`` (looked up only for messages)."""
@@ -75,6 +83,19 @@ class TagData:
     stuck: np.ndarray  # True = judged stuck (masked too if stuck_action = "mask")
     conversion: Conversion
     stats: dict
+    logged: np.ndarray | None = None  # times of the usable rows as logged, held repeats included (None: t_ns[use])
+    rule: GapRule | None = None  # the gap limit that applies
+    gaps: tuple[Gap, ...] = ()  # gaps over it between usable samples
+    median_s: float | None = None  # median and interquartile range of the intervals as logged
+    spread_s: float | None = None
+    stuck_runs: tuple[tuple[int, int, int], ...] = ()  # (first ns, last ns, rows) of each stuck run
+
+    @property
+    def usable_rows(self) -> np.ndarray:
+        """Times of the usable rows as logged: a held repeat says its value still held."""
+        if self.logged is not None:
+            return self.logged
+        return self.t_ns if bool(self.use.all()) else self.t_ns[self.use]
 
 
 def iso(ns: int | None) -> str | None:
@@ -84,15 +105,21 @@ def iso(ns: int | None) -> str | None:
         microsecond=(ns % 10**9) // 1000).isoformat()
 
 
+def iso_z(ns: int) -> str:
+    """An instant as ISO 8601 UTC with a Z, for warnings."""
+    return iso(ns).replace("+00:00", "Z")
+
+
 def ns_to_datetime(ns: int) -> datetime:
     return datetime.fromtimestamp(ns // 10**9, tz=timezone.utc).replace(microsecond=(ns % 10**9) // 1000)
 
 
 # -- reading -------------------------------------------------------------------------------
 def read_files(spec: DataSpec, vocab: QualityVocab, hasher: Executor
-               ) -> tuple[dict[str, list[Chunk]], list[Future], dict[int, RawTable]]:
-    """Every file's rows of every wanted tag, stamped; and each file's SHA-256 digest, being
-    computed on ``hasher`` (started after the file's parse, which it would only slow down)."""
+               ) -> tuple[dict[str, list[Chunk]], list[Future], dict[int, RawTable], list[ClockChange]]:
+    """Every file's rows of every wanted tag, stamped; each file's SHA-256 digest, being
+    computed on ``hasher`` (started after the file's parse, which it would only slow down);
+    and the clock changes met in local stamps."""
     wanted: dict[str, str | None] = {}
     for tg in spec.tags:
         wanted.setdefault(tg.tag, tg.quality_column)
@@ -100,14 +127,17 @@ def read_files(spec: DataSpec, vocab: QualityVocab, hasher: Executor
     chunks: dict[str, list[Chunk]] = {}
     tables: dict[int, RawTable] = {}
     digests: list[Future] = []
+    changes: list[ClockChange] = []
     _read_each(spec, vocab, wanted, text_time, chunks, tables,
-               after_parse=lambda path: digests.append(hasher.submit(file_sha256, path)))
-    return chunks, digests, tables
+               after_parse=lambda path: digests.append(hasher.submit(file_sha256, path)), changes=changes)
+    return chunks, digests, tables, changes
 
 
 def _read_each(spec: DataSpec, vocab: QualityVocab, wanted: dict, text_time: bool,
-               chunks: dict[str, list[Chunk]], tables: dict[int, RawTable], after_parse) -> None:
-    """Read every file into ``tables`` and its stamped rows of each wanted tag into ``chunks``."""
+               chunks: dict[str, list[Chunk]], tables: dict[int, RawTable], after_parse,
+               changes: list | None = None) -> None:
+    """Read every file into ``tables`` and its stamped rows of each wanted tag into ``chunks``
+    (and the clock changes of its local stamps into ``changes``)."""
     static_offset = 0
     for k, path in enumerate(spec.files):
         table = read_table(path, spec.read, spec.time.column, wanted, text_time, vocab,
@@ -139,6 +169,9 @@ def _read_each(spec: DataSpec, vocab: QualityVocab, wanted: dict, text_time: boo
             place = Place(str(path), table.word, table.numbers if every else table.numbers[used], spec.time.column)
             raw_time = table.time if every else table.time.iloc[used]
             stamps = parse_stamps(raw_time, spec.time, place, groups)
+            if changes is not None and stamps.changes:
+                names = list(table.tags) if groups is not None else None
+                changes.extend(c.named(str(path), names) for c in stamps.changes)
             if every:
                 t_all, gap_all = stamps.utc_ns, stamps.nonexistent
             else:
@@ -150,7 +183,7 @@ def _read_each(spec: DataSpec, vocab: QualityVocab, wanted: dict, text_time: boo
         for name, tr in table.tags.items():
             chunks.setdefault(name, []).append(Chunk(k, table.word, table.numbers, tr.rows, take_rows(t_all, tr.rows),
                                                      take_rows(gap_all, tr.rows) if any_gap else None, tr.values,
-                                                     tr.quality))
+                                                     tr.quality, tr.nan))
 
 
 def missing_tag_error(tg: TagSpec, spec: DataSpec, tables: dict[int, RawTable]) -> DataError:
@@ -179,10 +212,11 @@ def _gaps(c: Chunk) -> np.ndarray:
 
 
 def _concat(chunks: list[Chunk]):
-    """Times, spring-forward flags, values and quality codes of a tag's chunks, end to end."""
+    """Times, spring-forward flags, values, quality codes and NaN-value flags (or None) of a
+    tag's chunks, end to end."""
     if len(chunks) == 1:  # one file: its arrays as they are (none is changed in place later)
         c = chunks[0]
-        return c.t_ns, _gaps(c), c.values, c.quality
+        return c.t_ns, _gaps(c), c.values, c.quality, c.nan
     cat = np.concatenate
     t = cat([c.t_ns for c in chunks])
     gap = cat([_gaps(c) for c in chunks])
@@ -191,7 +225,10 @@ def _concat(chunks: list[Chunk]):
         q = cat([c.quality if c.quality is not None else np.full(c.values.size, -1, np.int32) for c in chunks])
     else:
         q = None
-    return t, gap, v, q
+    nan = None
+    if any(c.nan is not None for c in chunks):
+        nan = cat([c.nan if c.nan is not None else np.zeros(c.values.size, bool) for c in chunks])
+    return t, gap, v, q, nan
 
 
 def _source(chunks: list[Chunk], i: int, files) -> str:
@@ -245,13 +282,36 @@ def _out_of_order(t: np.ndarray, chunks: list[Chunk], idx: np.ndarray | None, fi
                f"{_source(chunks, ra, files)} ({iso(int(t[pos - 1]))})")
 
 
+def _interval_stats(t: np.ndarray) -> tuple[float | None, float | None]:
+    """Median and interquartile range (s) of a tag's intervals as logged; None below two rows."""
+    if t.size < 2:
+        return None, None
+    q25, q50, q75 = quartiles(np.diff(t)) / 1e9
+    return float(q50), float(q75 - q25)
+
+
+def _thin_repeats(t: np.ndarray, v: np.ndarray, masked: np.ndarray, limit_s: float
+                  ) -> tuple[np.ndarray | None, np.ndarray | None]:
+    """Which rows to keep after dropping held repeats (None: every row), and for every row
+    the position among the kept ones of the row whose value it holds (None: every row).  A
+    row after a gap over ``limit_s`` is a new reading, never a repeat of the row before it."""
+    rep = held_repeats(v, masked)
+    if np.isfinite(limit_s) and rep.any():
+        rep[1:] &= np.diff(t) <= limit_s * 1e9
+    if not rep.any():
+        return None, None
+    return np.flatnonzero(~rep), np.cumsum(~rep) - 1
+
+
 def process_tag(tg: TagSpec, chunks: list[Chunk], spec: DataSpec, conv: Conversion,
                 quality_texts: list[str] = (), start: int | None = None) -> TagData:
     """One tag's samples after judgement; ``start``: the experiment's start (ns), samples
     before it are dropped and counted."""
-    t, gap, v, q = _concat(chunks)
-    has_value = np.isfinite(v)
-    blank = int((~has_value).sum())
+    t, gap, v, q, nan = _concat(chunks)
+    is_nan = np.isnan(v)
+    blank_rows = is_nan if nan is None else is_nan & ~nan
+    has_value = ~blank_rows
+    blank = int(blank_rows.sum())
     rows_read = int(has_value.sum())
     keep = has_value & ~gap
     n_nonexistent = int((has_value & gap).sum())
@@ -269,6 +329,15 @@ def process_tag(tg: TagSpec, chunks: list[Chunk], spec: DataSpec, conv: Conversi
         early = keep & (t < start)
         before_start = int(early.sum())
         keep &= ~early
+    n_nan = n_inf = 0
+    if nan is not None:
+        not_number = keep & nan
+        n_nan = int(not_number.sum())
+        keep &= ~not_number
+    infinite = keep & np.isinf(v)
+    if infinite.any():
+        n_inf = int(infinite.sum())
+        keep &= ~infinite
     idx = None if keep.all() else np.flatnonzero(keep)
     if idx is not None:
         t, v = t[idx], v[idx]
@@ -284,56 +353,69 @@ def process_tag(tg: TagSpec, chunks: list[Chunk], spec: DataSpec, conv: Conversi
     if order is not None:
         t, v = t[order], v[order]
         q = q[order] if q is not None else None
-    repeats = 0
-    if tg.logging == "exception" and v.size:
-        rep = held_repeats(v)
-        repeats = int(rep.sum())
-        t, v = t[~rep], v[~rep]
-        q = q[~rep] if q is not None else None
-    judged = {REASON_RANGE: out_of_range(v, tg.valid)}
+    # judged on the rows as logged, before any held repeat is thinned
+    median_s, spread_s = _interval_stats(t)
+    rule = gap_rule(tg, spec, median_s)
+    bad_range = out_of_range(v, tg.valid)
     bq = bad_quality(q, list(quality_texts), spec.good_quality)
+    pre_bad = bad_range | bq if bq is not None else bad_range
+    usable = ~pre_bad
+    runs = stuck_runs(t, v, usable, tg.deadband, stuck_limit(tg.role, tg.stuck_after, spec.stuck_after))
+    st = np.zeros(t.size, bool)
+    for a, b in runs:
+        st[a:b + 1] = usable[a:b + 1]
+    runs_ns = tuple((int(t[a]), int(t[b]), int(st[a:b + 1].sum())) for a, b in runs)
+    mask_stuck = spec.stuck_action == "mask"
+    n_stuck = int(st.sum())  # rows as logged, held repeats among them included
+    repeats = repeats_in_stuck = 0
+    t_rows = owner = None
+    if tg.logging == "exception" and v.size:
+        kept, owner = _thin_repeats(t, v, pre_bad | st if mask_stuck else pre_bad, rule.limit_s)
+        if kept is not None:
+            t_rows = t
+            repeats = int(t.size - kept.size)
+            if n_stuck:
+                dropped = np.ones(t.size, bool)
+                dropped[kept] = False
+                repeats_in_stuck = int((dropped & st).sum())
+            t, v, bad_range, st, pre_bad = t[kept], v[kept], bad_range[kept], st[kept], pre_bad[kept]
+            bq = bq[kept] if bq is not None else None
+    judged = {REASON_RANGE: bad_range}
     if bq is not None:
         judged[REASON_QUALITY] = bq
     values = conv.apply(v)
-    pre_bad = judged[REASON_RANGE] | (bq if bq is not None else False)
-    st = stuck(t, v, ~pre_bad, tg.deadband, spec.stuck_after)
     if spec.spikes is not None:
         floor = tg.deadband * abs(conv.scale)
         judged[REASON_SPIKE] = spikes(t, values, ~(pre_bad | st), spec.spikes.window, spec.spikes.threshold, floor)
     flagged: dict[str, int] = {}
-    if spec.stuck_action == "mask":
+    if mask_stuck:
         judged[REASON_STUCK] = st
-    elif st.any():
-        flagged[REASON_STUCK] = int(st.sum())
+    elif n_stuck:
+        flagged[REASON_STUCK] = n_stuck
     masked_now, counts = count_first_reasons(judged)
     masked = {REASON_NONEXISTENT: n_nonexistent} if n_nonexistent else {}
+    if n_nan:
+        masked[REASON_NAN] = n_nan
+    if n_inf:
+        masked[REASON_INF] = n_inf
     masked.update(counts)
+    use = ~masked_now
+    logged = t_rows[use[owner]] if t_rows is not None else None  # a repeat is usable as its value is
+    gaps = _gaps_over(logged if logged is not None else (t if bool(use.all()) else t[use]), rule.limit_s)
     stats = dict(files=tuple(dict.fromkeys(str(spec.files[c.file]) for c in chunks)), rows_read=rows_read,
                  blank=blank, masked=masked, flagged=flagged, exact=n_exact, conflict=n_conflict,
-                 conflict_example=conflict_text, repeats=repeats, outside=outside, before_start=before_start,
-                 out_of_order=n_back, out_of_order_example=back_text)
-    return TagData(tg, t, values, ~masked_now, st, conv, stats)
+                 conflict_example=conflict_text, repeats=repeats, repeats_in_stuck=repeats_in_stuck,
+                 outside=outside, before_start=before_start, out_of_order=n_back, out_of_order_example=back_text)
+    return TagData(tg, t, values, use, st, conv, stats, logged, rule, gaps, median_s, spread_s, runs_ns)
+
+
+def _gaps_over(rows: np.ndarray, limit_s: float) -> tuple[Gap, ...]:
+    """The gaps over ``limit_s`` between consecutive usable rows (times in ns)."""
+    at = gaps_over(rows, limit_s)
+    return tuple(Gap(int(rows[i]), int(rows[i + 1])) for i in at)
 
 
 # -- gaps, segments ----------------------------------------------------------------------------
-def gap_limit(tg: TagSpec, spec: DataSpec) -> float | None:
-    if tg.max_gap is not None:
-        return tg.max_gap
-    if tg.logging == "exception":
-        return None
-    return spec.max_gap
-
-
-def gaps_of(t_ns: np.ndarray, limit_s: float | None, steps: np.ndarray | None = None) -> list[tuple[int, int]]:
-    """(last sample before, first sample after) of every gap longer than the limit;
-    ``steps``: ``np.diff(t_ns)`` when the caller has it already."""
-    if limit_s is None or t_ns.size < 2:
-        return []
-    d = np.diff(t_ns) if steps is None else steps
-    hit = np.flatnonzero(d > limit_s * 1e9)
-    return [(int(t_ns[i]), int(t_ns[i + 1])) for i in hit]
-
-
 def merge_breaks(breaks: list[tuple[int, int]]) -> list[tuple[int, int]]:
     out: list[list[int]] = []
     for a, b in sorted(breaks):
@@ -382,28 +464,28 @@ def quartiles(x: np.ndarray) -> np.ndarray:
 
 def _tag_report(td: TagData, spec: DataSpec, start: int | None, end: int | None) -> TagReport:
     s, t, use = td.stats, td.t_ns, td.use
-    med = spread = cover = longest = None
-    n_gaps = 0
-    limit = gap_limit(td.spec, spec)
-    steps = np.diff(t) if t.size >= 2 else None
-    if steps is not None:
-        q25, q50, q75 = quartiles(steps) / 1e9
-        med, spread = float(q50), float(q75 - q25)
+    cover = longest = None
+    rule = td.rule
+    med, spread = td.median_s, td.spread_s
     every = bool(use.all())
     tu = t if every else t[use]
     first_valid = int(tu[0]) if tu.size else None
     if tu.size and start is not None and end is not None and end > start:
-        # without a gap limit: three median intervals for a sampled tag; none for a tag logged
-        # by exception (its value holds between changes, however long)
-        lim = limit if limit is not None else (None if td.spec.logging == "exception" or not med else 3.0 * med)
-        gaps = gaps_of(tu, lim, steps if every else None)
-        if limit is not None:
-            n_gaps = len(gaps)
-        lo, hi = max(int(tu[0]), start), min(int(tu[-1]), end)
+        rows = td.usable_rows
+        if rule is not None and rule.active:
+            gaps = [(g.start_ns, g.end_ns) for g in td.gaps]
+        else:  # no limit: for the coverage, three median intervals of a sampled tag; none for a tag
+            # logged by exception (its value holds between changes, however long)
+            lim = None if td.spec.logging == "exception" or not med else 3.0 * med
+            gaps = [(g.start_ns, g.end_ns) for g in _gaps_over(rows, lim or np.inf)]
+        lo, hi = max(int(rows[0]), start), min(int(rows[-1]), end)
         covered = max(hi - lo, 0) - sum(b - a for a, b in gaps)
         cover = 100.0 * covered / (end - start)
         if gaps:
             longest = max(b - a for a, b in gaps) / 1e9
+    limit = rule.limit_s if rule is not None and rule.active else None
+    stuck_s = stuck_limit(td.spec.role, td.spec.stuck_after, spec.stuck_after)
+    action = "masked" if spec.stuck_action == "mask" else "flagged, not masked"
     return TagReport(
         symbol=td.spec.symbol, tag=td.spec.tag, role=td.spec.role, files=s["files"], rows_read=s["rows_read"],
         blank_cells=s["blank"], first_utc=iso(int(t[0])) if t.size else None,
@@ -411,9 +493,29 @@ def _tag_report(td: TagData, spec: DataSpec, start: int | None, end: int | None)
         coverage_pct=cover, valid=int(use.sum()), masked=s["masked"], flagged=s["flagged"],
         exact_duplicates=s["exact"], conflicting_duplicates=s["conflict"], conflict_example=s["conflict_example"],
         held_repeats_dropped=s["repeats"], outside_windows=s["outside"], conversion=td.conversion.text,
-        gap_limit_s=limit, gaps=n_gaps, longest_gap_s=longest, before_start=s["before_start"],
+        gap_limit_s=limit, gaps=len(td.gaps), longest_gap_s=longest, before_start=s["before_start"],
         out_of_order=s["out_of_order"], out_of_order_example=s["out_of_order_example"],
-        first_valid_utc=iso(first_valid), first_valid_text=describe_instant(first_valid, spec.time, start))
+        first_valid_utc=iso(first_valid), first_valid_text=describe_instant(first_valid, spec.time, start),
+        gap_rule=rule.how if rule is not None else "", gap_list=tuple(gap_dict(g, td.spec, iso) for g in td.gaps),
+        stuck_after_s=stuck_s if np.isfinite(stuck_s) else None,
+        stuck_runs=tuple({"start_utc": iso(a), "end_utc": iso(b), "duration_s": (b - a) / 1e9, "rows": n,
+                          "action": action} for a, b, n in td.stuck_runs),
+        held_repeats_in_stuck=s["repeats_in_stuck"], logging=td.spec.logging)
+
+
+def _tag_warnings(td: TagData, spec: DataSpec) -> list[str]:
+    """What a reader must be told about a tag: every gap over its limit and every stuck run."""
+    out = [gap_warning(g, td.spec, td.rule, iso_z) for g in td.gaps]
+    who = f"{td.spec.role} {td.spec.symbol} (tag '{td.spec.tag}')"
+    limit = stuck_limit(td.spec.role, td.spec.stuck_after, spec.stuck_after)
+    for a, b, n in td.stuck_runs:
+        what = "masked" if spec.stuck_action == "mask" else "flagged, not masked (stuck_action = \"mask\" masks it)"
+        held = (" (logged by exception: a frozen sensor, or a value that held within the deadband)"
+                if td.spec.logging == "exception" else "")
+        out.append(f"{who}: flat within half its deadband ({td.spec.deadband:g}) for {duration_text((b - a) / 1e9)}, "
+                   f"{iso_z(a)} .. {iso_z(b)}, {n} rows, over stuck_after {duration_text(limit)}: a stuck "
+                   f"sensor{held}; {what}")
+    return out
 
 
 def _valid_within(td: TagData, lo: int, hi: int) -> int:
@@ -444,7 +546,7 @@ def assemble(spec: DataSpec) -> Assembly:
 
 def _assemble(spec: DataSpec, hasher: Executor) -> Assembly:
     vocab = QualityVocab()
-    chunks, digests, tables = read_files(spec, vocab, hasher)
+    chunks, digests, tables, clock_changes = read_files(spec, vocab, hasher)
     convs = {tg.symbol: tag_conversion(tg.units, tg.model_units, tag=tg.tag, where=tg.where) for tg in spec.tags}
     tags: list[TagData] = []
     raw_spans = []
@@ -484,6 +586,9 @@ def _assemble(spec: DataSpec, hasher: Executor) -> Assembly:
             problems.append(DataError("no segment holds a valid observation of every output",
                                       where=spec.where, hint="widen the windows or raise max_gap"))
     tag_reports = tuple(_tag_report(td, spec, start, end) for td in tags)
+    warnings = [c.warning() for c in clock_changes]
+    for td in tags:
+        warnings += _tag_warnings(td, spec)
     start_text = describe_instant(start, spec.time) + (f" ({origin_from})" if origin_from else "")
     sources = tuple({"path": str(path), "sha256": d.result()} for path, d in zip(spec.files, digests))
     record = _record(spec, tags, start, segments, sources, notes) if segments else None
@@ -497,7 +602,8 @@ def _assemble(spec: DataSpec, hasher: Executor) -> Assembly:
         start_utc=iso(start), end_utc=iso(end), segments=seg_reports,
         select=tuple((iso(a), iso(b)) for a, b in spec.select), exclude=tuple((iso(a), iso(b)) for a, b in spec.exclude),
         holdout=holdout, problems=tuple(p.render() for p in problems), notes=tuple(notes),
-        start_from=origin_from, start_text=start_text)
+        start_from=origin_from, start_text=start_text, warnings=tuple(warnings),
+        clock_changes=tuple(c.to_dict() for c in clock_changes))
     return Assembly(spec, record, report, tuple(problems))
 
 
@@ -508,7 +614,7 @@ def _segments(spec: DataSpec, tags: list[TagData], start: int, end: int
     breaks = []
     for td in tags:
         if td.spec.role == ROLE_INPUT:
-            breaks += gaps_of(td.t_ns[td.use], gap_limit(td.spec, spec))
+            breaks += [(g.start_ns, g.end_ns) for g in td.gaps]
     breaks += [(lo, hi) for lo, hi in spec.exclude if hi > start and lo < end]
     sel = sorted(spec.select)
     breaks += [(sel[i][1], sel[i + 1][0]) for i in range(len(sel) - 1) if sel[i + 1][0] > sel[i][1]]

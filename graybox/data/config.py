@@ -2,12 +2,14 @@
 which model symbol, in which units, and how to judge their quality.
 
 One experiment is a ``[data]`` table (named "main"); several are ``[experiments.NAME]``
-tables with the same keys.  Every key, with its default::
+tables with the same keys.  Every key; a key that has a default shows it (the tests compare
+these lines with :data:`DATA_DEFAULTS` and :data:`TAG_DEFAULTS`), a value marked "e.g." is
+an example::
 
     [data]
-    files = ["vessel_log.csv"]        # paths or glob patterns, relative to the config's folder;
+    files = ["vessel_log.csv"]        # e.g.; paths or glob patterns, relative to the config's folder;
                                       # several files feed one experiment (per tag, per month)
-    format = "csv"                    # csv | parquet | excel; default: from the file ending
+    format = "csv"                    # e.g.; csv | parquet | excel; default: from the file ending
     layout = "wide"                   # wide: a time column and a column per tag
                                       # long: a time column, a tag column, a value column
     # -- reading text and spreadsheets
@@ -16,10 +18,13 @@ tables with the same keys.  Every key, with its default::
     encoding = "utf-8"                # a byte-order mark is skipped
     header_row = 1                    # the line (csv) or row (excel) holding column names
     skip_after_header = 0             # lines between the header and the data (units rows)
-    no_value = ["", "NaN", "nan", "NA", "#N/A"]   # cell texts meaning "no sample here"
-    sheet = "Sheet1"                  # excel: the sheet; default the first
+    no_value = ["", "NA", "#N/A"]     # cell texts meaning "no sample here" (counted as cells without a
+                                      # value); other texts that are not numbers are errors, except
+                                      # "nan" and "inf", "-inf" (any case): masked and counted as
+                                      # "not a number" and "infinite" (list "NaN" here if it means no sample)
+    sheet = "Sheet1"                  # e.g.; excel: the sheet; default the first
     # -- time stamps
-    time_column = "timestamp"         # omit only for a static model (no states): rows become 0, 1, 2, ... s;
+    time_column = "timestamp"         # e.g.; omit only for a static model (no states): rows become 0, 1, 2, ... s;
                                       # a model with states without it is an error
     time_format = "iso"               # iso:        ISO 8601 text, each stamp with its offset (Z, +01:00)
                                       # local:      wall-clock text (or naive stored times) in `timezone`
@@ -27,8 +32,8 @@ tables with the same keys.  Every key, with its default::
                                       # serial_1900 / serial_1904: spreadsheet day numbers, wall-clock
                                       #             in `timezone`, in that date system
                                       # elapsed:    numbers of time since the start of a run (lab, batch)
-    time_units = "min"                # elapsed only, and required there: any pint time unit (s, min, h, day)
-    start = "2026-01-05T06:00Z"       # where the experiment starts and its initial state applies: an
+    time_units = "min"                # e.g.; elapsed only, and required there: any pint time unit (s, min, h, day)
+    start = "2026-01-05T06:00Z"       # e.g.; where the experiment starts and its initial state applies: an
                                       # instant (ISO with offset, or local in `timezone`); for elapsed
                                       # time a number in time_units (start = 0).  Default: the first
                                       # time stamp of the data, a row without values included; a select
@@ -36,51 +41,65 @@ tables with the same keys.  Every key, with its default::
                                       # (counted).  Stamps out of order within a file are sorted (stably,
                                       # counted); duplicates (same tag and instant): identical ones
                                       # dropped, of conflicting ones the first recorded kept (counted)
-    timezone = "Europe/Berlin"        # an IANA zone; required by local and serial stamps
-    date_order = "ymd"                # local text only: ymd | dmy | mdy; never guessed
+    timezone = "Europe/Berlin"        # e.g.; an IANA zone; required by local and serial stamps
+    date_order = "dmy"                # e.g.; local text only: ymd | dmy | mdy; never guessed (default:
+                                      # year-first stamps only)
     clock = "24h"                     # local text only: 24h | 12h (12h stamps end in AM/PM)
     # -- long layout columns
     tag_column = "tag"
     value_column = "value"
-    quality_column = "quality"        # optional; in a wide table give it per tag instead
+    quality_column = "quality"        # e.g.; optional; in a wide table give it per tag instead
     good_quality = ["good"]           # quality texts (case-insensitive) or codes that count as good
     # -- physical references (required only when a tag needs them)
-    atmosphere = "101.325 kPa"        # for gauge pressures
-    standard_pressure = "101.325 kPa" # for standard volumetric flows
-    standard_temperature = "0 degC"
+    atmosphere = "101.325 kPa"        # e.g.; for gauge pressures (psig, barg, ...)
+    standard_pressure = "101.325 kPa" # e.g.; for standard volumetric flows (scfm, Nm3/h, ...)
+    standard_temperature = "0 degC"   # e.g.
     # -- gaps, windows, checks
-    max_gap = "15 min"                # an input gap longer than this splits the record
-    select = [["2026-01-05T00:00Z", "2026-01-20T00:00Z"]]   # keep only these spans (elapsed: numbers)
-    exclude = [["2026-01-11T06:00Z", "2026-01-11T18:00Z"]]  # drop these (shutdown, cleaning)
-    holdout = 0.25                    # last fraction (or from an instant) kept for validation
-    stuck_after = "2 h"               # a run of samples flat to within the deadband this long
+    max_gap = "auto"                  # gap limit of each sampled tag: "auto" is the longer of 15 min and
+                                      # 10 of the tag's median intervals (as logged); or a duration, or
+                                      # "off".  An input gap over it splits the record into segments;
+                                      # every gap over it (inputs and outputs) is warned about.  Tags
+                                      # with logging = "exception" keep their own max_gap, else the
+                                      # longer of 1 h and 10 median intervals ("auto"), since their
+                                      # silences may be held values.  "off" here: no limit for any tag
+                                      # that declares none of its own
+    select = [["2026-01-05T00:00Z", "2026-01-20T00:00Z"]]   # e.g.; keep only these spans (elapsed: numbers)
+    exclude = [["2026-01-11T06:00Z", "2026-01-11T18:00Z"]]  # e.g.; drop these (shutdown, cleaning)
+    holdout = 0.25                    # e.g.; last fraction (or from an instant) kept for validation
+    stuck_after = "2 h"               # measured outputs: a run of samples flat to within half the
+                                      # deadband this long is a stuck sensor ("off": never); inputs are
+                                      # not judged (a controller holds a setpoint) unless a tag says so
     stuck_action = "flag"             # flag | mask
     [data.spikes]                     # optional robust spike filter (masks)
-    window = "30 min"                 # centred window of the running median
+    window = "30 min"                 # e.g.; centred window of the running median
     threshold = 6                     # in robust standard deviations (1.4826 * MAD)
     [data.informative]                # the window finder of `graybox check`
     window = "1 day"
     step = "6 h"
     top = 5
-    noise = { T = 0.2 }               # output noise (model units) weighting each output; default 1
+    noise = { T = 0.2 }               # e.g.; output noise (model units) weighting each output; default 1
 
     [data.tags]
-    F = "FI_200"                      # shorthand: tag name, already in model units
+    F = "FI_200"                      # e.g.; shorthand: tag name, already in model units
     [data.tags.T]
-    tag = "TI_101"
-    units = "degF"                    # what the historian logs
-    temperature = "reading"           # reading | difference (needed when an offset scale is involved)
-    pressure = "gauge"                # gauge | absolute (psig, barg, kPag, ... imply gauge)
-    flow_basis = "standard"           # standard | actual (Nm3/h, scfm, ... imply standard)
-    molar_mass = "28.96 g/mol"        # standard flow into a mass flow
-    span = [0, 250]                   # percent-of-span tags: units = "%", span in span_units
-    span_units = "degF"
-    valid = [0, 300]                  # valid range, in the tag's own units (as logged)
-    deadband = 0.5                    # logging deadband, tag units: a run flat to half of it is stuck
-    logging = "sampled"               # sampled | exception (report-by-exception; repeats are holds)
-    quality_column = "TI_101.Q"       # wide layout: this tag's quality column
-    max_gap = "1 h"                   # this input's own gap limit
-    atmosphere = "14.5 psi"           # per-tag overrides of the physical references
+    tag = "TI_101"                    # e.g.
+    units = "degF"                    # e.g.; what the historian logs (default: the model's units);
+                                      # trade names: see graybox/unitreg.py (gpm, psig, scfm, ...)
+    temperature = "reading"           # e.g.; reading | difference (needed when an offset scale is involved)
+    pressure = "gauge"                # e.g.; gauge | absolute (psig, barg, kPag, ... imply gauge)
+    flow_basis = "standard"           # e.g.; standard | actual (Nm3/h, scfm, ... imply standard)
+    molar_mass = "28.96 g/mol"        # e.g.; standard flow into a mass flow
+    span = [0, 250]                   # e.g.; percent-of-span tags: units = "%", span in span_units
+    span_units = "degF"               # e.g.
+    valid = [0, 300]                  # e.g.; valid range, in the tag's own units (as logged)
+    deadband = 0                      # logging deadband, tag units: a run flat to half of it is stuck
+    logging = "sampled"               # sampled | exception (report-by-exception: a repeated value is a
+                                      # hold, dropped after the quality, range and stuck judgements)
+    quality_column = "TI_101.Q"       # e.g.; wide layout: this tag's quality column
+    max_gap = "1 h"                   # e.g.; this tag's own gap limit (a duration, "auto" or "off")
+    stuck_after = "30 min"            # e.g.; this tag's own stuck rule (a duration or "off"); default:
+                                      # the experiment's for an output, "off" for an input
+    atmosphere = "14.5 psi"           # e.g.; per-tag overrides of the physical references
 """
 
 from __future__ import annotations
@@ -90,6 +109,7 @@ import re
 import zoneinfo
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
+from functools import lru_cache
 from pathlib import Path
 from typing import Mapping
 
@@ -109,7 +129,25 @@ DATE_ORDERS = ("ymd", "dmy", "mdy")
 CLOCKS = ("24h", "12h")
 STUCK_ACTIONS = ("flag", "mask")
 LOGGING = ("sampled", "exception")
-DEFAULT_NO_VALUE = ("", "NaN", "nan", "NA", "#N/A")
+DEFAULT_NO_VALUE = ("", "NA", "#N/A")
+
+# The defaults of the keys that have one, as a study file writes them: the parser takes them
+# from here, and a test compares them with the lines of the module docstring above.
+DATA_DEFAULTS = {
+    "layout": "wide", "delimiter": ",", "decimal": ".", "encoding": "utf-8", "header_row": 1,
+    "skip_after_header": 0, "no_value": list(DEFAULT_NO_VALUE), "time_format": "iso", "clock": "24h",
+    "tag_column": "tag", "value_column": "value", "good_quality": ["good"], "max_gap": "auto",
+    "stuck_after": "2 h", "stuck_action": "flag",
+}
+SPIKE_DEFAULTS = {"threshold": 6}
+INFORMATIVE_DEFAULTS = {"window": "1 day", "step": "6 h", "top": 5}
+TAG_DEFAULTS = {"deadband": 0, "logging": "sampled"}
+
+GAP_AUTO = "auto"
+OFF_WORDS = ("off", "none", "never")
+AUTO_GAP_FLOOR_S = 900.0  # "auto" gap limit of a sampled tag: the longer of 15 min and ...
+AUTO_GAP_INTERVALS = 10.0  # ... ten of the tag's median sample intervals (as logged)
+AUTO_GAP_EXCEPTION_FLOOR_S = 3600.0  # a tag logged by exception: the longer of 1 h and ten intervals
 
 DATA_KEYS = (
     "files", "format", "layout", "delimiter", "decimal", "encoding", "header_row", "skip_after_header", "no_value",
@@ -120,7 +158,7 @@ DATA_KEYS = (
 )
 TAG_KEYS = (
     "tag", "units", "temperature", "pressure", "flow_basis", "molar_mass", "span", "span_units", "valid", "deadband",
-    "logging", "quality_column", "max_gap", "atmosphere", "standard_pressure", "standard_temperature",
+    "logging", "quality_column", "max_gap", "stuck_after", "atmosphere", "standard_pressure", "standard_temperature",
 )
 SPIKE_KEYS = ("window", "threshold")
 INFORMATIVE_KEYS = ("window", "step", "top", "noise")
@@ -154,9 +192,10 @@ class TagSpec:
     deadband: float
     logging: str
     quality_column: str | None
-    max_gap: float | None  # seconds; None = the experiment's
+    max_gap: float | str | None  # seconds; "auto" (GAP_AUTO); inf = "off"; None = the experiment's
     where: str  # location of this tag's units (or table), for unit messages
     where_tag: str = ""  # location of the tag name, for messages about the tag itself
+    stuck_after: float | None = None  # seconds; inf = "off"; None = the experiment's (outputs), off (inputs)
 
 
 @dataclass(frozen=True)
@@ -209,11 +248,11 @@ class DataSpec:
     time: TimeSpec
     good_quality: frozenset[str]
     tags: tuple[TagSpec, ...]
-    max_gap: float | None
+    max_gap: float | str  # seconds; "auto" (GAP_AUTO, see AUTO_GAP_*); inf = "off"
     select: tuple[tuple[int, int], ...]  # UTC ns, half-open [start, end)
     exclude: tuple[tuple[int, int], ...]
     holdout: float | datetime | None
-    stuck_after: float
+    stuck_after: float  # seconds, for measured outputs; inf = "off"
     stuck_action: str
     spikes: SpikeSpec | None
     search: SearchSpec | None
@@ -238,6 +277,42 @@ def _duration(t: Table, key: str, default=None) -> float | None:
     if key not in t:
         return default
     return parse_duration(t.get(key), t.where(key))
+
+
+def duration_or_off(value, where: str, key: str, auto: bool = False) -> float | str:
+    """A duration in seconds from a number or text ("15 min"); ``inf`` for "off" (or false);
+    "auto" (:data:`GAP_AUTO`) where ``auto`` allows it.  Located ConfigError otherwise."""
+    if value is False or (isinstance(value, str) and value.strip().lower() in OFF_WORDS):
+        return float("inf")
+    if auto and isinstance(value, str) and value.strip().lower() == GAP_AUTO:
+        return GAP_AUTO
+    if value is True:
+        raise ConfigError("must be a duration or \"off\", got true", where=where,
+                          hint=f"{key} = \"2 h\" or {key} = \"off\"" + (" or \"auto\"" if auto else ""))
+    try:
+        return parse_duration(value, where)
+    except ConfigError as exc:
+        raise ConfigError(exc.message, where=where,
+                          hint=f"write a duration ('30 min', '2 h') or \"off\"" + (" or \"auto\"" if auto else "")
+                          ) from None
+
+
+@lru_cache(maxsize=None)
+def _default_duration(key: str, table: str) -> float | str:
+    defaults = {"data": DATA_DEFAULTS, "informative": INFORMATIVE_DEFAULTS}[table]
+    return duration_or_off(defaults[key], f"graybox/data/config.py default of '{key}'", key, auto=True)
+
+
+def default_duration(key: str, defaults: dict = DATA_DEFAULTS) -> float | str:
+    """The default of a duration key in seconds (or "auto"), from its text in the defaults."""
+    return _default_duration(key, "informative" if defaults is INFORMATIVE_DEFAULTS else "data")
+
+
+def _duration_or_off(t: Table, key: str, default=None, auto: bool = False) -> float | str | None:
+    """:func:`duration_or_off` of ``t[key]``; ``default`` when the key is absent."""
+    if key not in t:
+        return default
+    return duration_or_off(t.get(key), t.where(key), key, auto)
 
 
 def _quantity_text(t: Table, key: str, default=None) -> str | None:
@@ -363,10 +438,11 @@ def _tag(t: Table, symbol: str, info: SymbolInfo, defaults: dict) -> TagSpec:
     basis = sub.string("flow_basis", None, choices=("standard", "actual")) if "flow_basis" in sub else None
     span = sub.pair("span") if "span" in sub else None
     valid = sub.pair("valid") if "valid" in sub else None
-    deadband = sub.number("deadband", 0.0, minimum=0.0)
-    logging = sub.string("logging", "sampled", choices=LOGGING)
+    deadband = sub.number("deadband", float(TAG_DEFAULTS["deadband"]), minimum=0.0)
+    logging = sub.string("logging", TAG_DEFAULTS["logging"], choices=LOGGING)
     quality = sub.string("quality_column", None) if "quality_column" in sub else None
-    max_gap = _duration(sub, "max_gap")
+    max_gap = _duration_or_off(sub, "max_gap", auto=True)
+    stuck_after = _duration_or_off(sub, "stuck_after")
     units = TagUnits(
         units=units_text, temperature=temperature, pressure=pressure, flow_basis=basis, span=span,
         span_units=sub.string("span_units", None) if "span_units" in sub else None,
@@ -377,7 +453,7 @@ def _tag(t: Table, symbol: str, info: SymbolInfo, defaults: dict) -> TagSpec:
     )
     return TagSpec(symbol, tag.strip(), info.role, info.units, info.hold, units, valid, float(deadband), logging,
                    quality, max_gap, sub.where("units" if "units" in sub else None),
-                   sub.where("tag") if isinstance(raw, dict) else t.where(symbol))
+                   sub.where("tag") if isinstance(raw, dict) else t.where(symbol), stuck_after)
 
 
 def parse_data_table(table: dict, name: str, *, symbols: Mapping[str, SymbolInfo], base_dir: Path,
@@ -390,15 +466,15 @@ def parse_data_table(table: dict, name: str, *, symbols: Mapping[str, SymbolInfo
     t.check_keys(DATA_KEYS)
     files = _files(t, Path(base_dir))
     fmt = t.string("format", None, choices=FORMATS) if "format" in t else None
-    layout = t.string("layout", "wide", choices=LAYOUTS)
-    delimiter = t.string("delimiter", ",")
+    layout = t.string("layout", DATA_DEFAULTS["layout"], choices=LAYOUTS)
+    delimiter = t.string("delimiter", DATA_DEFAULTS["delimiter"])
     if len(delimiter) != 1 and delimiter != "\\t":
         raise t.error("delimiter", f"must be one character, got {delimiter!r}", hint="\",\", \";\", \"\\t\" or \"|\"")
     delimiter = "\t" if delimiter == "\\t" else delimiter
-    decimal = t.string("decimal", ".", choices=(".", ","))
+    decimal = t.string("decimal", DATA_DEFAULTS["decimal"], choices=(".", ","))
     if decimal == delimiter:
         raise t.error("decimal", "is the same character as the delimiter", hint="delimiter = \";\" with decimal = \",\"")
-    encoding = t.string("encoding", "utf-8")
+    encoding = t.string("encoding", DATA_DEFAULTS["encoding"])
     try:
         import codecs
 
@@ -408,13 +484,13 @@ def parse_data_table(table: dict, name: str, *, symbols: Mapping[str, SymbolInfo
                       hint="e.g. \"utf-8\", \"cp1252\", \"latin-1\", \"utf-16\"") from None
     if encoding.lower().replace("_", "-") in ("utf-8", "utf8"):
         encoding = "utf-8-sig"
-    header_row = t.number("header_row", 1, integer=True, minimum=1)
-    skip = t.number("skip_after_header", 0, integer=True, minimum=0)
-    no_value = tuple(t.string_list("no_value", list(DEFAULT_NO_VALUE)))
+    header_row = t.number("header_row", DATA_DEFAULTS["header_row"], integer=True, minimum=1)
+    skip = t.number("skip_after_header", DATA_DEFAULTS["skip_after_header"], integer=True, minimum=0)
+    no_value = tuple(t.string_list("no_value", list(DATA_DEFAULTS["no_value"])))
     sheet = t.string("sheet", None) if "sheet" in t else None
 
     time_column = t.string("time_column", None) if "time_column" in t else None
-    tfmt = t.string("time_format", "iso", choices=TIME_FORMATS)
+    tfmt = t.string("time_format", DATA_DEFAULTS["time_format"], choices=TIME_FORMATS)
     time_units, unit_s = _time_units(t, tfmt)
     tz = t.string("timezone", None) if "timezone" in t else None
     if tz is not None:
@@ -431,12 +507,12 @@ def parse_data_table(table: dict, name: str, *, symbols: Mapping[str, SymbolInfo
         raise t.error("time_format", f"'{tfmt}' stamps are wall-clock times; the time zone is needed",
                       hint="declare timezone = \"Europe/Berlin\" (an IANA name), or \"UTC\" if they are UTC")
     date_order = t.string("date_order", None, choices=DATE_ORDERS) if "date_order" in t else None
-    clock = t.string("clock", "24h", choices=CLOCKS)
+    clock = t.string("clock", DATA_DEFAULTS["clock"], choices=CLOCKS)
 
-    tag_column = t.string("tag_column", "tag")
-    value_column = t.string("value_column", "value")
+    tag_column = t.string("tag_column", DATA_DEFAULTS["tag_column"])
+    value_column = t.string("value_column", DATA_DEFAULTS["value_column"])
     quality_column = t.string("quality_column", None) if "quality_column" in t else None
-    good = t.get("good_quality", ["good"])
+    good = t.get("good_quality", list(DATA_DEFAULTS["good_quality"]))
     if isinstance(good, (str, int)) and not isinstance(good, bool):
         good = [good]
     if not isinstance(good, list) or not all(isinstance(g, (str, int)) and not isinstance(g, bool) for g in good):
@@ -444,27 +520,28 @@ def parse_data_table(table: dict, name: str, *, symbols: Mapping[str, SymbolInfo
     good_set = frozenset(normalize_quality(g) for g in good)
 
     defaults = {k: _quantity_text(t, k) for k in ("atmosphere", "standard_pressure", "standard_temperature")}
-    max_gap = _duration(t, "max_gap")
+    max_gap = _duration_or_off(t, "max_gap", auto=True) if "max_gap" in t else default_duration("max_gap")
     select = _windows(t, "select", tz, unit_s)
     exclude = _windows(t, "exclude", tz, unit_s)
     holdout = _holdout(t, tz, unit_s is not None)
     start = _start(t, time_column, tz, unit_s)
-    stuck_after = _duration(t, "stuck_after", 7200.0)
-    stuck_action = t.string("stuck_action", "flag", choices=STUCK_ACTIONS)
+    stuck_after = _duration_or_off(t, "stuck_after") if "stuck_after" in t else default_duration("stuck_after")
+    stuck_action = t.string("stuck_action", DATA_DEFAULTS["stuck_action"], choices=STUCK_ACTIONS)
     spikes = None
     if "spikes" in t:
         st = t.sub("spikes")
         st.check_keys(SPIKE_KEYS)
         spikes = SpikeSpec(parse_duration(st.get("window"), st.where("window")),
-                           st.number("threshold", 6.0, positive=True))
+                           st.number("threshold", float(SPIKE_DEFAULTS["threshold"]), positive=True))
     search = None
     if "informative" in t:
         it = t.sub("informative")
         it.check_keys(INFORMATIVE_KEYS)
         noise_t = it.sub("noise")
         noise = {k: noise_t.number(k, positive=True) for k in noise_t.keys()}
-        search = SearchSpec(_duration(it, "window", 86400.0), _duration(it, "step", 21600.0),
-                            it.number("top", 5, integer=True, minimum=1), noise)
+        search = SearchSpec(_duration(it, "window", default_duration("window", INFORMATIVE_DEFAULTS)),
+                            _duration(it, "step", default_duration("step", INFORMATIVE_DEFAULTS)),
+                            it.number("top", INFORMATIVE_DEFAULTS["top"], integer=True, minimum=1), noise)
 
     tags_t = t.sub("tags", required=True)
     missing = [s for s in symbols if s not in tags_t]

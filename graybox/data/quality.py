@@ -1,10 +1,21 @@
 """Quality judgements on one tag's samples (sorted by time): each function returns a boolean
 array, True where the sample is judged (bad, out of range, a spike, stuck, a held repeat).
 
-Reasons are counted once per sample, in this order: a time that does not exist, a bad
-quality flag, out of the valid range, stuck, a spike.  The stuck judgement sees only samples
-that passed flag and range; the spike judgement sees only those that are not stuck either
-(a frozen stretch would make the robust spread look zero next to it).
+Reasons are counted once per sample, in this order: a time that does not exist, a value that
+is not a number, an infinite value, a bad quality flag, out of the valid range, stuck, a
+spike.  The stuck judgement sees only samples that passed flag and range; the spike
+judgement sees only those that are not stuck either (a frozen stretch would make the robust
+spread look zero next to it).
+
+Every judgement is made on the rows as logged.  Only then are the held repeats of a tag
+logged by exception thinned (a repeat is a hold, not an observation): a stretch of bad
+rows repeating one garbage value is counted as bad rows, and a frozen sensor repeating
+itself is judged stuck, before any repeat is dropped.  The spike filter runs on the
+thinned samples (a held spike would otherwise look like a plateau).
+
+Stuck runs are judged on measured outputs by default: an input held at a setpoint by a
+controller is not a frozen sensor.  A tag's own ``stuck_after`` (a duration or "off")
+overrides the default, for an input too (:func:`stuck_limit`).
 """
 
 from __future__ import annotations
@@ -12,12 +23,16 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from graybox.data.config import ROLE_OUTPUT
+
 REASON_NONEXISTENT = "nonexistent time (clocks went forward)"
+REASON_NAN = "not a number"
+REASON_INF = "infinite"
 REASON_QUALITY = "bad quality flag"
 REASON_RANGE = "outside valid range"
 REASON_SPIKE = "spike"
 REASON_STUCK = "stuck sensor"
-REASON_ORDER = (REASON_NONEXISTENT, REASON_QUALITY, REASON_RANGE, REASON_STUCK, REASON_SPIKE)
+REASON_ORDER = (REASON_NONEXISTENT, REASON_NAN, REASON_INF, REASON_QUALITY, REASON_RANGE, REASON_STUCK, REASON_SPIKE)
 
 # 1.4826 = 1/Phi^-1(3/4): the MAD of a normal distribution times it is its standard deviation
 # (common practice in robust statistics).
@@ -44,12 +59,24 @@ def out_of_range(values: np.ndarray, valid: tuple[float, float] | None) -> np.nd
     return (values < lo) | (values > hi)
 
 
-def held_repeats(values: np.ndarray) -> np.ndarray:
-    """True for a sample equal to the one before it: in a report-by-exception export written
-    out on a grid, these are the historian's held value, not new observations."""
+def held_repeats(values: np.ndarray, masked: np.ndarray | None = None) -> np.ndarray:
+    """True for a sample equal to the one right before it, neither of them ``masked``: in a
+    report-by-exception export written out on a grid (or with a heartbeat), these are the
+    historian's held value, not new observations.  A masked sample is never a repeat (it is
+    counted under its own reason), and the first good sample after masked ones is new."""
     out = np.zeros(values.size, bool)
     out[1:] = values[1:] == values[:-1]
+    if masked is not None and masked.any():
+        out[1:] &= ~masked[1:] & ~masked[:-1]
     return out
+
+
+def stuck_limit(role: str, own: float | None, experiment: float) -> float:
+    """The stuck duration (seconds; inf: not judged) of a tag: its own ``stuck_after`` when
+    given, else the experiment's for a measured output and none for an input."""
+    if own is not None:
+        return float(own)
+    return float(experiment) if role == ROLE_OUTPUT else float("inf")
 
 
 def _half_medians(t_ns: np.ndarray, v: np.ndarray, half_s: float) -> tuple[np.ndarray, np.ndarray]:
@@ -126,7 +153,16 @@ def spikes(t_ns: np.ndarray, values: np.ndarray, usable: np.ndarray, window_s: f
 
 def stuck(t_ns: np.ndarray, values: np.ndarray, usable: np.ndarray, deadband: float, min_duration_s: float,
           min_samples: int = 3) -> np.ndarray:
-    """Runs of consecutive usable samples that all lie within half the ``deadband`` of the
+    """True for the samples of :func:`stuck_runs`."""
+    out = np.zeros(values.size, bool)
+    for a, b in stuck_runs(t_ns, values, usable, deadband, min_duration_s, min_samples):
+        out[a:b + 1] |= usable[a:b + 1]
+    return out
+
+
+def stuck_runs(t_ns: np.ndarray, values: np.ndarray, usable: np.ndarray, deadband: float, min_duration_s: float,
+               min_samples: int = 3) -> list[tuple[int, int]]:
+    """(first, last) positions of each run of consecutive usable samples that all lie within half the ``deadband`` of the
     run's first sample (exactly equal for a zero deadband), at least ``min_samples`` long and
     lasting at least ``min_duration_s``.
 
@@ -135,7 +171,9 @@ def stuck(t_ns: np.ndarray, values: np.ndarray, usable: np.ndarray, deadband: fl
     by the deadband, so consecutive samples differ by about the deadband and never form such
     a run, however long the plant sat steady (half the deadband leaves room for stored
     values rounded at the deadband's edge)."""
-    out = np.zeros(values.size, bool)
+    out: list[tuple[int, int]] = []
+    if not np.isfinite(min_duration_s):
+        return out
     every = bool(usable.all())
     v = values if every else values[usable]
     if v.size < min_samples:
@@ -170,7 +208,7 @@ def stuck(t_ns: np.ndarray, values: np.ndarray, usable: np.ndarray, deadband: fl
 
 def _mark(out, idx, t, a, b, min_samples, min_ns) -> None:
     if b - a + 1 >= min_samples and (t[b] - t[a]) >= min_ns:
-        out[idx[a:b + 1]] = True
+        out.append((int(idx[a]), int(idx[b])))
 
 
 def count_first_reasons(judged: dict[str, np.ndarray]) -> tuple[np.ndarray, dict[str, int]]:

@@ -4,6 +4,12 @@ A reader opens its file read-only, reads only the columns it needs and returns a
 :class:`RawTable`: the time column as stored, each wanted tag's values as numbers (``NaN``
 where a cell holds no value), its quality texts if any, and the 1-based line (CSV) or row
 (Parquet, Excel) of every sample, so that every later message can point at the file.
+
+A cell holds no value when it is empty, null or one of the ``no_value`` texts.  A cell that
+holds a NaN (the text "nan" in any case, or a NaN stored in a Parquet float column) is a
+value that is not a number: it is ``NaN`` too, and marked in the tag's ``nan`` mask, so the
+data layer counts it as its own reason.  Infinite values ("inf", "-inf", "Infinity", a
+number beyond the float range) stay infinite.
 """
 
 from __future__ import annotations
@@ -31,9 +37,10 @@ class TagRaw:
     """One tag's rows from one file, in recorded order."""
 
     tag: str
-    values: np.ndarray  # float, NaN = no value in that cell
+    values: np.ndarray  # float, NaN = no value in that cell (or not a number: see ``nan``)
     quality: np.ndarray | None  # quality code per row (into the experiment's QualityVocab), or None
     rows: Rows  # positions into the table's time column
+    nan: np.ndarray | None = None  # True where the cell held a NaN value (not a blank); None: none did
 
 
 def take_rows(arr: np.ndarray, rows: Rows) -> np.ndarray:
@@ -192,12 +199,30 @@ def _parquet_frame(path: Path, opts: ReadOptions, time_column, wanted):
             header = list(pf.schema_arrow.names)
             needed = _needed_columns(header, opts, time_column, wanted)
             _require_columns(path, header, needed, opts, "Parquet schema")
-            frame = pf.read(columns=needed).to_pandas()
+            table = pf.read(columns=needed)
+            nan_cells = _stored_nans(table)
+            frame = table.to_pandas()
     except DataError:
         raise
     except Exception as exc:  # noqa: BLE001 - pyarrow raises ArrowInvalid, OSError, ...
         raise DataError(f"the file cannot be read as Parquet: {exc}", where=str(path)) from None
+    frame.attrs["nan_cells"] = nan_cells
     return frame, "row", np.arange(len(frame), dtype=np.int64) + 1, header
+
+
+def _stored_nans(table) -> dict[str, np.ndarray]:
+    """Per float column of an arrow table that stores a NaN (not a null): where it does.
+    pandas turns nulls into NaN too; these masks keep a stored NaN apart from an empty cell."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    out = {}
+    for name, col in zip(table.column_names, table.columns):
+        if pa.types.is_floating(col.type) and len(col):
+            hit = pc.fill_null(pc.is_nan(col), False)
+            if pc.any(hit).as_py():
+                out[name] = hit.to_numpy(zero_copy_only=False).astype(bool)
+    return out
 
 
 def _excel_frame(path: Path, opts: ReadOptions, time_column, wanted):
@@ -238,22 +263,32 @@ def _excel_frame(path: Path, opts: ReadOptions, time_column, wanted):
 
 
 # -- columns into tag samples ------------------------------------------------------------------
-def to_numbers(col: pd.Series, decimal: str, describe) -> np.ndarray:
-    """Float values of a value column; ``NaN`` for blank cells; a DataError naming the line
-    for the first text that is not a number.  ``describe(i)`` locates row ``i``."""
+NAN_TEXTS = ("nan", "+nan", "-nan")  # compared in lower case: a value that is not a number
+
+
+def to_numbers(col: pd.Series, decimal: str, describe) -> tuple[np.ndarray, np.ndarray | None]:
+    """Float values of a value column (``NaN`` for blank cells) and where a cell held the
+    text "nan" (any case; None when none did); a DataError naming the line for the first
+    other text that is not a number.  ``describe(i)`` locates row ``i``."""
     if pd.api.types.is_numeric_dtype(col.dtype) and not pd.api.types.is_bool_dtype(col.dtype):
-        return col.to_numpy(dtype=float, na_value=np.nan)
+        return col.to_numpy(dtype=float, na_value=np.nan), None
     text = col.astype("str").str.strip()
     blank = col.isna().to_numpy() | (text == "").to_numpy()
     if decimal == ",":
         text = text.str.replace(".", "", regex=False).str.replace(",", ".", regex=False)
     nums = pd.to_numeric(text.where(~blank), errors="coerce")
     bad = nums.isna().to_numpy() & ~blank
+    nan = None
+    if bad.any():
+        nan = bad & text.str.lower().isin(NAN_TEXTS).to_numpy()
+        bad &= ~nan
+        if not nan.any():
+            nan = None
     if bad.any():
         i = int(np.argmax(bad))
         raise DataError(f"'{col.iloc[i]}' is not a number", where=describe(i),
                         hint="fix the cell, or list that text in no_value if it means 'no sample'")
-    return nums.to_numpy(dtype=float, na_value=np.nan)
+    return nums.to_numpy(dtype=float, na_value=np.nan), nan
 
 
 class QualityVocab:
@@ -287,12 +322,23 @@ class QualityVocab:
 
 
 def _drop_empty_rows(frame: pd.DataFrame, numbers: np.ndarray):
+    nan_cells = frame.attrs.get("nan_cells") or {}
     empty = np.ones(len(frame), bool)
     for name in frame.columns:  # column by column: most columns of most files have no blank cell
-        empty &= frame[name].isna().to_numpy()
+        col_empty = frame[name].isna().to_numpy()
+        if name in nan_cells:
+            col_empty = col_empty & ~nan_cells[name]  # a stored NaN is a value
+        empty &= col_empty
         if not empty.any():
-            return frame, numbers
-    return frame.loc[~empty].reset_index(drop=True), numbers[~empty]
+            return frame, numbers, nan_cells
+    kept = frame.loc[~empty].reset_index(drop=True)
+    return kept, numbers[~empty], {k: m[~empty] for k, m in nan_cells.items()}
+
+
+def _either(a: np.ndarray | None, b: np.ndarray | None) -> np.ndarray | None:
+    if a is None:
+        return b
+    return a if b is None else a | b
 
 
 def _tag_codes(tag_col: pd.Series, wanted) -> tuple[np.ndarray, list[str]]:
@@ -364,7 +410,7 @@ def _periodic(codes: np.ndarray, n_names: int) -> list[slice] | None:
 def _to_raw(path: Path, frame: pd.DataFrame, word: str, numbers: np.ndarray, opts: ReadOptions,
             time_column: str | None, wanted: dict[str, str | None], header: list[str],
             vocab: QualityVocab) -> RawTable:
-    frame, numbers = _drop_empty_rows(frame, numbers)
+    frame, numbers, nan_cells = _drop_empty_rows(frame, numbers)
     if len(frame) == 0:
         raise DataError("the file has a header but no data rows", where=str(path), hint="export the data again")
 
@@ -378,12 +424,13 @@ def _to_raw(path: Path, frame: pd.DataFrame, word: str, numbers: np.ndarray, opt
         for tag, qcol in wanted.items():
             if tag not in frame.columns:
                 continue
-            values = to_numbers(frame[tag], opts.decimal, locate(tag))
+            values, nan = to_numbers(frame[tag], opts.decimal, locate(tag))
+            nan = _either(nan, nan_cells.get(tag))
             quality = vocab.codes_of(frame[qcol]) if qcol and qcol in frame.columns else None
             if qcol and qcol not in frame.columns:
                 raise DataError(f"no quality column '{qcol}' for tag '{tag}'", where=str(path),
                                 hint="check the tag's quality_column")
-            tags[tag] = TagRaw(tag, values, quality, slice(0, len(frame), 1))
+            tags[tag] = TagRaw(tag, values, quality, slice(0, len(frame), 1), nan)
         return RawTable(path, word, numbers, time, tags, present, time_column)
     with ThreadPoolExecutor(max_workers=1) as helper:
         # the quality flags are coded on a second thread (pyarrow releases the GIL) while this
@@ -394,21 +441,28 @@ def _to_raw(path: Path, frame: pd.DataFrame, word: str, numbers: np.ndarray, opt
     value_col = frame[opts.value_column]
     numeric = pd.api.types.is_numeric_dtype(value_col.dtype) and not pd.api.types.is_bool_dtype(value_col.dtype)
     all_values = value_col.to_numpy(dtype=float, na_value=np.nan) if numeric else None
+    stored_nan = nan_cells.get(opts.value_column)
     for rows, name in zip(groups, names):
         if name not in wanted:
             continue
         if all_values is not None:
             values = take_rows(all_values, rows)
+            nan = take_rows(stored_nan, rows) if stored_nan is not None else None
         else:  # text in the value column: parse this tag's cells only (other tags may hold text)
             col = value_col.iloc[rows].reset_index(drop=True)
-            values = to_numbers(col, opts.decimal, lambda i, r=rows: locate(opts.value_column)(row_at(r, i)))
+            values, nan = to_numbers(col, opts.decimal, lambda i, r=rows: locate(opts.value_column)(row_at(r, i)))
+        if nan is not None and not nan.any():
+            nan = None
         quality = take_rows(all_quality, rows) if all_quality is not None else None
         if name in tags:  # the same tag written two ways (e.g. with trailing blanks): merge in order
             prev = tags[name]
             merged = np.concatenate([row_positions(prev.rows), row_positions(rows)])
             o = np.argsort(merged, kind="stable")
+            if nan is not None or prev.nan is not None:
+                nan = np.concatenate([prev.nan if prev.nan is not None else np.zeros(prev.values.size, bool),
+                                      nan if nan is not None else np.zeros(values.size, bool)])[o]
             values = np.concatenate([prev.values, values])[o]
             quality = None if quality is None else np.concatenate([prev.quality, quality])[o]
             rows = merged[o]
-        tags[name] = TagRaw(name, values, quality, rows)
+        tags[name] = TagRaw(name, values, quality, rows, nan)
     return RawTable(path, word, numbers, time, tags, tuple(names), time_column)

@@ -37,6 +37,12 @@ class TagReport:
     out_of_order_example: str | None = None
     first_valid_utc: str | None = None  # the first usable sample (an output's first observation)
     first_valid_text: str = ""  # the same for a reader (elapsed time, offset from the start)
+    gap_rule: str = ""  # how gap_limit_s was set ("auto (default; ...)", "the tag's max_gap", "off (...)")
+    gap_list: tuple[dict, ...] = ()  # every gap over the limit: start_utc, end_utc, duration_s, action
+    stuck_after_s: float | None = None  # the stuck rule's duration for this tag; None = not judged
+    stuck_runs: tuple[dict, ...] = ()  # every stuck run: start_utc, end_utc, duration_s, rows, action
+    held_repeats_in_stuck: int = 0  # of held_repeats_dropped, those inside stuck runs (flagged, not masked)
+    logging: str = "sampled"
 
     @property
     def masked_total(self) -> int:
@@ -68,6 +74,8 @@ class DataReport:
     windows: tuple[Any, ...] = field(default=())  # informative windows (WindowScore), when ranked
     start_from: str = ""  # what set start_utc (the experiment's start): declared, first stamp, select window
     start_text: str = ""  # the start for a reader
+    warnings: tuple[str, ...] = ()  # what a reader must know: clock changes, long gaps, stuck runs
+    clock_changes: tuple[dict, ...] = ()  # each clock change met in local stamps, and how it was resolved
 
     @property
     def ok(self) -> bool:
@@ -101,8 +109,8 @@ class DataReport:
         rows = []
         for t in self.tags:
             span = f"{_short(t.first_utc)}..{_short(t.last_utc)}" if t.first_utc else "-"
-            rows.append((t.symbol, t.tag, t.role, str(t.rows_read), span, _dur(t.median_interval_s),
-                         _dur(t.interval_spread_s), "-" if t.coverage_pct is None else f"{t.coverage_pct:.1f}%",
+            rows.append((t.symbol, t.tag, t.role, str(t.rows_read), span, duration_text(t.median_interval_s),
+                         duration_text(t.interval_spread_s), "-" if t.coverage_pct is None else f"{t.coverage_pct:.1f}%",
                          str(t.valid), str(t.masked_total), str(sum(t.flagged.values()))))
         widths = [max(len(h), *(len(r[i]) for r in rows)) if rows else len(h) for i, h in enumerate(head)]
         lines.append("")
@@ -113,7 +121,8 @@ class DataReport:
         for t in self.tags:
             details = [f"conversion {t.conversion}"]
             for reason, n in t.masked.items():
-                details.append(f"masked {n} ({reason})")
+                extra = "; list the text in no_value if it means no sample" if reason == "not a number" else ""
+                details.append(f"masked {n} ({reason}{extra})")
             for reason, n in t.flagged.items():
                 details.append(f"flagged {n} ({reason}, not masked)")
             if t.exact_duplicates:
@@ -127,18 +136,23 @@ class DataReport:
             if t.before_start:
                 details.append(f"{t.before_start} samples before the start dropped")
             if t.held_repeats_dropped:
-                details.append(f"{t.held_repeats_dropped} held repeats dropped (exception logging)")
+                inside = f", {t.held_repeats_in_stuck} of them in stuck runs" if t.held_repeats_in_stuck else ""
+                details.append(f"{t.held_repeats_dropped} held repeats dropped (exception logging, after the "
+                               f"quality and stuck judgements{inside})")
             if t.outside_windows:
                 details.append(f"{t.outside_windows} samples outside the selected windows")
             if t.blank_cells:
                 details.append(f"{t.blank_cells} cells without a value")
             if t.gaps:
-                details.append(f"{t.gaps} gaps over {_dur(t.gap_limit_s)} (longest {_dur(t.longest_gap_s)})")
-            lines.append(f"  {t.symbol} ({t.tag}): " + "; ".join(details))
+                details.append(f"{t.gaps} gaps over {duration_text(t.gap_limit_s)} (longest {duration_text(t.longest_gap_s)})")
+            details.append(f"gap limit {duration_text(t.gap_limit_s) if t.gap_limit_s else 'none'} ({t.gap_rule})"
+                           if t.gap_rule else "")
+            details.append(f"stuck after {duration_text(t.stuck_after_s)}" if t.stuck_after_s else "stuck: not judged")
+            lines.append(f"  {t.symbol} ({t.tag}): " + "; ".join(d for d in details if d))
         lines.append("")
         lines.append(f"  segments: {len(self.segments)}")
         for s in self.segments:
-            lines.append(f"    {s.index}: {_short(s.start_utc)} .. {_short(s.end_utc)}  ({_dur(s.duration_s)}, "
+            lines.append(f"    {s.index}: {_short(s.start_utc)} .. {_short(s.end_utc)}  ({duration_text(s.duration_s)}, "
                          f"{s.observations} observations)")
         if self.select:
             lines.append("  selected: " + ", ".join(f"{a}..{b}" for a, b in self.select))
@@ -153,6 +167,10 @@ class DataReport:
             lines.append("  informative windows (log det of the Fisher information at the guesses):")
             for w in self.windows:
                 lines.append("    " + w.describe())
+        if self.warnings:
+            lines.append("")
+            for w in self.warnings:
+                lines.append("  warning: " + w)
         if self.problems:
             lines.append("")
             lines.append("  a fit cannot run:")
@@ -167,7 +185,8 @@ def _short(iso: str | None) -> str:
     return iso.replace("+00:00", "Z").replace(":00Z", "Z")
 
 
-def _dur(seconds: float | None) -> str:
+def duration_text(seconds: float | None) -> str:
+    """A duration for a reader: seconds, minutes, hours or days, three significant digits."""
     if seconds is None:
         return "-"
     s = float(seconds)

@@ -25,13 +25,17 @@ Wall-clock times are resolved in *recorded order*, before any sorting: in the ho
 fall-back change repeats, the first pass through the hour is summer time and a stamp not
 later than the one before it (same tag, same repeated hour) starts the second pass.  A wall
 time that a spring-forward change skips does not exist; it is reported as such (the rows
-are then masked with that reason by the caller).
+are then masked with that reason by the caller).  Every clock change that wall-clock stamps
+cross is reported (:class:`ClockChange`): where, the offsets before and after, and how the
+stamps of the repeated or skipped hour were read.  (ISO stamps carry their offsets; nothing
+is resolved there, so nothing is reported.)
 """
 
 from __future__ import annotations
 
 import re
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
+from datetime import datetime, timedelta, timezone
 
 import numpy as np
 import pandas as pd
@@ -52,12 +56,95 @@ _WALL = (r"^\s*(\d{1,4})[-/.](\d{1,2})[-/.](\d{1,4})"
 
 
 @dataclass(frozen=True)
+class ClockChange:
+    """A change of the zone's UTC offset that wall-clock stamps cross, and how the stamps
+    of the repeated hour (clocks back) or the skipped hour (clocks forward) were read."""
+
+    zone: str
+    utc_ns: int  # the instant of the change
+    offset_before_s: int
+    offset_after_s: int
+    rows: int  # stamps in the repeated (back) or skipped (forward) wall-clock span
+    first_pass: int = 0  # back: stamps read with the offset before (the first pass through the span)
+    second_pass: int = 0  # back: stamps read with the offset after
+    file: str = ""
+    tags: tuple[str, ...] = ()  # long tables: the tags with stamps in the span (each resolved in its own order)
+    group_codes: tuple[int, ...] = ()
+
+    @property
+    def back(self) -> bool:
+        return self.offset_after_s < self.offset_before_s
+
+    def named(self, file: str, names: list[str] | None) -> "ClockChange":
+        """The same change, placed in ``file``, its group codes turned into tag names."""
+        tags = tuple(names[g] for g in self.group_codes if 0 <= g < len(names)) if names else ()
+        return replace(self, file=file, tags=tags, group_codes=())
+
+    def _wall(self, offset_s: int) -> str:
+        return datetime.fromtimestamp(self.utc_ns / 1e9 + offset_s, tz=timezone.utc).strftime("%Y-%m-%d %H:%M:%S")
+
+    @property
+    def local_before(self) -> str:
+        """The wall clock at the change, read on the old offset (e.g. 02:00:00 when clocks go back)."""
+        return self._wall(self.offset_before_s)
+
+    @property
+    def local_after(self) -> str:
+        """The wall clock right after the change (e.g. 01:00:00 when clocks go back)."""
+        return self._wall(self.offset_after_s)
+
+    def resolution(self) -> str:
+        if self.back:
+            span = f"{self.local_after[11:16]}-{self.local_before[11:16]}"
+            if not self.rows:
+                return f"no stamp fell in the repeated hour {span}"
+            how = (f"{self.rows} stamps fell in the repeated hour {span}: {self.first_pass} read as the first pass "
+                   f"({_offset_text(self.offset_before_s)}), {self.second_pass} as the second "
+                   f"({_offset_text(self.offset_after_s)}), told apart by recorded order (a stamp not later than the "
+                   "one before it starts the second pass" + (", each tag in its own order" if self.tags else "") + ")")
+            if not (self.first_pass and self.second_pass):
+                how += ("; every one was read as the " + ("first" if self.first_pass else "second") + " pass: if the "
+                        "export holds the other pass only, those stamps are an hour off")
+            return how
+        span = f"{self.local_before[11:16]}-{self.local_after[11:16]}"
+        if not self.rows:
+            return f"no stamp fell in the skipped hour {span}"
+        return f"{self.rows} stamps fell in the skipped hour {span}: they do not exist there and were masked"
+
+    def warning(self) -> str:
+        where = f"{self.file}: " if self.file else ""
+        tags = f" (tags {', '.join(self.tags)})" if self.tags else ""
+        verb = "went back" if self.back else "went forward"
+        return (f"{where}clock change in {self.zone}{tags}: at {self.local_before} local "
+                f"({_offset_text(self.offset_before_s)}) clocks {verb} to {self.local_after[11:]} "
+                f"({_offset_text(self.offset_after_s)}), {_utc_text(self.utc_ns)}; {self.resolution()}")
+
+    def to_dict(self) -> dict:
+        return {"file": self.file, "zone": self.zone, "utc": _utc_text(self.utc_ns),
+                "kind": "back" if self.back else "forward", "local_before": self.local_before,
+                "local_after": self.local_after, "offset_before": _offset_text(self.offset_before_s),
+                "offset_after": _offset_text(self.offset_after_s), "rows": self.rows, "first_pass": self.first_pass,
+                "second_pass": self.second_pass, "tags": list(self.tags), "resolution": self.resolution()}
+
+
+def _offset_text(seconds: int) -> str:
+    sign = "+" if seconds >= 0 else "-"
+    m = abs(int(seconds)) // 60
+    return f"{sign}{m // 60:02d}:{m % 60:02d}"
+
+
+def _utc_text(ns: int) -> str:
+    return datetime.fromtimestamp(ns // 10**9, tz=timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+@dataclass(frozen=True)
 class Stamps:
-    """UTC nanoseconds per row (``NAT`` where the wall time does not exist) and which rows
-    fell into a spring-forward gap."""
+    """UTC nanoseconds per row (``NAT`` where the wall time does not exist), which rows
+    fell into a spring-forward gap, and the clock changes the wall-clock stamps cross."""
 
     utc_ns: np.ndarray
     nonexistent: np.ndarray
+    changes: tuple[ClockChange, ...] = ()
 
 
 @dataclass(frozen=True)
@@ -393,10 +480,72 @@ def localize(wall_ns: np.ndarray, tz: str, groups: np.ndarray | None = None) -> 
     nonexistent = gap_u[codes]
     utc[nonexistent] = NAT
     amb_rows = np.flatnonzero(amb_u[codes])
+    second_rows = np.zeros(0, np.intp)
     if amb_rows.size:
         second = _second_pass(wall_ns[amb_rows], None if groups is None else np.asarray(groups)[amb_rows])
-        utc[amb_rows[second]] = lt[codes[amb_rows[second]]]
-    return Stamps(utc, nonexistent)
+        second_rows = amb_rows[second]
+        utc[second_rows] = lt[codes[second_rows]]
+    changes = clock_changes(np.asarray(uniq, np.int64), e, gap_u, tz, wall_ns, nonexistent, amb_rows, second_rows,
+                            groups)
+    return Stamps(utc, nonexistent, changes)
+
+
+def _offset_at(zone, utc_s: float) -> int:
+    return int(datetime.fromtimestamp(utc_s, tz=zone).utcoffset().total_seconds())
+
+
+def _change_instant(zone, lo_s: int, hi_s: int) -> int:
+    """The first whole second in ``(lo_s, hi_s]`` whose UTC offset differs from ``lo_s``'s
+    (by bisection; offsets are steps that change on whole seconds)."""
+    before = _offset_at(zone, lo_s)
+    while hi_s - lo_s > 1:
+        mid = (lo_s + hi_s) // 2
+        if _offset_at(zone, mid) == before:
+            lo_s = mid
+        else:
+            hi_s = mid
+    return hi_s
+
+
+def clock_changes(walls: np.ndarray, early_utc: np.ndarray, gap: np.ndarray, tz: str, wall_ns: np.ndarray,
+                  nonexistent: np.ndarray, amb_rows: np.ndarray, second_rows: np.ndarray,
+                  groups: np.ndarray | None) -> tuple[ClockChange, ...]:
+    """Every change of the zone's offset between the distinct wall times ``walls`` (their
+    summer-time readings ``early_utc``, NaT-free where not ``gap``), with the rows in the
+    repeated or skipped span counted as they were read."""
+    ok = ~gap
+    if ok.sum() < 2:
+        return ()
+    w, off = walls[ok], walls[ok] - early_utc[ok]
+    if off.min() == off.max():  # the usual case: one offset throughout
+        return ()
+    import zoneinfo
+
+    zone = zoneinfo.ZoneInfo(tz)
+    order = np.argsort(w, kind="stable")
+    w, off = w[order], off[order]
+    at = np.flatnonzero(off[1:] != off[:-1])
+    out = []
+    second = np.zeros(wall_ns.size, bool)
+    second[second_rows] = True
+    amb = np.zeros(wall_ns.size, bool)
+    amb[amb_rows] = True
+    for i in at:
+        lo_s = int((w[i] - off[i]) // 10**9)
+        hi_s = int(-((-(w[i + 1] - off[i + 1])) // 10**9))
+        t_s = _change_instant(zone, lo_s, hi_s)
+        before = _offset_at(zone, t_s - 1)
+        after = _offset_at(zone, t_s)
+        a_ns = (t_s + min(before, after)) * 10**9
+        b_ns = (t_s + max(before, after)) * 10**9
+        in_span = (wall_ns >= a_ns) & (wall_ns < b_ns)
+        rows = in_span & (amb if after < before else nonexistent)
+        n = int(rows.sum())
+        n_second = int((rows & second).sum()) if after < before else 0
+        codes = tuple(int(g) for g in np.unique(np.asarray(groups)[rows])) if groups is not None and n else ()
+        out.append(ClockChange(tz, t_s * 10**9, before, after, n, n - n_second if after < before else 0, n_second,
+                               group_codes=codes))
+    return tuple(out)
 
 
 def _second_pass(wall: np.ndarray, groups: np.ndarray | None) -> np.ndarray:

@@ -2,7 +2,8 @@
 
 Every conversion the data layer does is affine, ``model = scale * raw + offset``:
 
-* plain units (``kW`` into ``W``, ``USgal/min`` into ``m**3/s``): a scale;
+* plain units (``kW`` into ``W``, ``USgal/min`` or ``gpm`` into ``m**3/s``): a scale; the
+  trade names the shared registry adds are listed in :data:`graybox.unitreg.TRADE_UNITS`;
 * temperature *readings* (``10 degF`` reads ``260.93 K``): scale and offset;
 * temperature *differences* (``a 10 degF rise`` is ``5.556 K``): a scale only;
 * gauge pressures (``psig``, ``barg``, ``kPag``, ``MPag``, ``mbarg``, or any pressure unit
@@ -19,6 +20,7 @@ so the factors are pint's (exact definitions where they exist).
 
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass
 from functools import lru_cache
 
@@ -26,7 +28,7 @@ import numpy as np
 import pint
 
 from graybox.errors import ConfigError
-from graybox.unitreg import registry
+from graybox.unitreg import AMBIGUOUS_UNITS, TRADE_UNITS, registry
 
 GAUGE_UNITS = {"psig": "psi", "barg": "bar", "kPag": "kPa", "MPag": "MPa", "mbarg": "mbar", "Pag": "Pa"}
 STANDARD_FLOW_UNITS = {
@@ -92,9 +94,22 @@ def quantity(text: str, what: str, where: str) -> pint.Quantity:
     return q
 
 
+def trade_names_hint() -> str:
+    """The trade unit names graybox knows beyond pint's own, for a hint."""
+    return (f"trade names known: {', '.join(TRADE_UNITS)}; gauge pressures (with an atmosphere): "
+            f"{', '.join(GAUGE_UNITS)}; standard flows (with standard conditions): {', '.join(STANDARD_FLOW_UNITS)}")
+
+
 def parse_unit(text: str, where: str, whose: str) -> pint.Unit:
     ureg = registry()
     raw = (text or "").strip() or "dimensionless"
+    for word in re.findall(r"[A-Za-z_]+", raw):
+        if word in AMBIGUOUS_UNITS:
+            raise ConfigError(f"{whose} units '{raw}': '{word}' is ambiguous", where=where, hint=AMBIGUOUS_UNITS[word])
+    if raw in GAUGE_UNITS or raw in STANDARD_FLOW_UNITS:
+        raise ConfigError(f"{whose} units '{raw}' need a declaration that cannot apply here", where=where,
+                          hint="gauge pressures and standard flows are tag units only (with atmosphere or standard "
+                               "conditions); write the absolute or actual unit")
     try:
         q = ureg.Quantity(1.0, raw)
     except pint.errors.OffsetUnitCalculusError:
@@ -103,7 +118,7 @@ def parse_unit(text: str, where: str, whose: str) -> pint.Unit:
     except Exception:  # noqa: BLE001 - UndefinedUnitError, syntax errors, ...
         close = _close_unit_names(raw)
         hint = (f"did you mean {' or '.join(repr(c) for c in close)}? " if close else "") + \
-            "write units pint knows, e.g. 'degC', 'kW', 'kg/h', 'psi', 'USgal/min'"
+            "write units pint knows, e.g. 'degC', 'kW', 'kg/h', 'psi', 'USgal/min'; " + trade_names_hint()
         raise ConfigError(f"{whose} units '{raw}' are not known to pint", where=where, hint=hint) from None
     if q.magnitude != 1.0:
         raise ConfigError(f"{whose} units '{raw}' carry a numeric factor", where=where)
@@ -114,7 +129,7 @@ def _close_unit_names(raw: str) -> list[str]:
     import difflib
 
     ureg = registry()
-    names = [*GAUGE_UNITS, *STANDARD_FLOW_UNITS, "degC", "degF", "K", "psi", "bar", "kPa", "W", "kW", "kg/s",
+    names = [*TRADE_UNITS, *GAUGE_UNITS, *STANDARD_FLOW_UNITS, "degC", "degF", "K", "psi", "bar", "kPa", "W", "kW", "kg/s",
              "kg/h", "m**3/h", "USgal/min", "lb/h", "Btu/h"]
     names += [n for n in dir(ureg) if len(n) <= 12][:4000]
     return difflib.get_close_matches(raw, names, n=2, cutoff=0.75)

@@ -126,14 +126,27 @@ def test_report_by_exception_months_of_steady_operation_are_not_stuck(tmp_path):
 
 def test_gridded_exception_export_drops_held_repeats(tmp_path):
     """The same export written on a 1-min grid, declared logging = "exception": the held
-    repeats are dropped (never made-up observations), nothing is flagged stuck, and the
-    observations are the historian's change events."""
+    repeats are dropped (never made-up observations) and the observations are the
+    historian's change events.  Stuck runs are judged on the rows as logged, before the
+    repeats are thinned (issue 13): a value held within the deadband for longer than
+    stuck_after looks exactly like a frozen sensor, so it is flagged (not masked), and the
+    flagged rows are those of the literal stuck rule on the gridded rows (reference above)."""
     table, n_logged = _steady(tmp_path, "grid.csv", "exception", repeats=True)
+    table["tags"]["T"]["stuck_after"] = "2 day"  # the value holds for 42 h on average: some runs are longer
     rec, rep = load(tmp_path, table)
-    assert rep.tag("T").flagged == {} and rep.tag("T").masked == {}
+    grid = pd.read_csv(tmp_path / "grid.csv")
+    t_ns = pd.DatetimeIndex(pd.to_datetime(grid["time"])).as_unit("ns").asi8
+    want = _stuck_by_hand(t_ns, grid["TI_101"].to_numpy(), np.ones(len(grid), bool), 0.2, 2 * 86400.0)
+    assert 0 < want.sum() < len(grid)
+    assert rep.tag("T").masked == {} and rep.tag("T").flagged == {REASON_STUCK: int(want.sum())}
     assert rec.outputs["T"].t.size == n_logged
     assert rep.tag("T").held_repeats_dropped == 60 * 1440 - n_logged
-    assert len(rec.segments) == 1  # exception-logged inputs have no gap limit of their own
+    # every stuck run lost all but its first row as repeats
+    assert rep.tag("T").held_repeats_in_stuck == int(want.sum()) - len(rep.tag("T").stuck_runs)
+    # the inputs are not judged stuck (held at one value throughout), and their rows on the
+    # grid leave no gap: one segment
+    assert rep.tag("Q").flagged == {} and rep.tag("F").flagged == {}
+    assert len(rec.segments) == 1
 
 
 def test_duplicates_exact_dropped_conflicting_reported(tmp_path):
