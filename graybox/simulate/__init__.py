@@ -8,7 +8,7 @@ sets per call.  Two engines share one interface:
 from __future__ import annotations
 
 from graybox.simulate.generate import generate
-from graybox.simulate.reference import SimResult, Tolerances
+from graybox.simulate.contract import SimResult, Tolerances
 from graybox.simulate.reference import simulate as simulate_reference
 from graybox.simulate.timeline import Timeline, plan
 
@@ -78,7 +78,7 @@ def finite_difference_sensitivities(funcs, timeline: Timeline, theta, x0_est, to
     smooth functions, not of step-size decisions)."""
     import numpy as np
 
-    from graybox.simulate.reference import n_columns
+    from graybox.simulate.contract import n_columns
 
     theta = np.atleast_2d(np.asarray(theta, float))
     n_sets, n_p = theta.shape

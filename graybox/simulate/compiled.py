@@ -59,15 +59,18 @@ from graybox.model.expr import (
 )
 from graybox.model.spec import ModelSpec
 from graybox.simulate import integrators as _itg
+from graybox.simulate.contract import SimResult, Tolerances, n_columns
 from graybox.simulate.generate import ModelFunctions, generate, spec_digest, symbol_env, tensor_defs
-from graybox.simulate.integrators import AUTO, EXPLICIT, IMPLICIT, METHODS, Batch, spectral_radius
-from graybox.simulate.reference import (
+from graybox.simulate.initial import initial_states
+from graybox.simulate.integrators import (
+    AUTO,
+    EXPLICIT,
+    IMPLICIT,
     MAX_STEPS_PER_INTERVAL,
+    METHODS,
     STIFF_RATIO,
-    SimResult,
-    Tolerances,
-    initial_states,
-    n_columns,
+    Batch,
+    spectral_radius,
 )
 from graybox.simulate.timeline import SegmentPlan, Timeline
 

@@ -64,6 +64,13 @@ IMPLICIT = "implicit"
 AUTO = "auto"
 METHODS = (AUTO, EXPLICIT, IMPLICIT)
 
+# Rules both engines apply (the compiled core's generated kernels take these same values).
+#: Stability boundary of the explicit pair on the negative real axis is about 3.3; beyond
+#: this many fastest-time-constants per interval the implicit method is chosen.
+STIFF_RATIO = 3.0
+#: Attempted steps allowed in one knot interval before the parameter set is failed.
+MAX_STEPS_PER_INTERVAL = 100_000
+
 
 @dataclass
 class Interval:
