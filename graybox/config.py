@@ -8,6 +8,8 @@ Top-level tables (every key is checked; unknown keys are rejected with a suggest
     [data]                  one experiment (named "main"), or
     [experiments.NAME]      several, each with the data table's keys (graybox.data)
     [noise.OUTPUT]          sigma = 0.1 (given) or "estimate" (the default); kind, phi, ...
+    [noise.groups]          NAME = ["OUT1", "OUT2", ...]: outputs in the same units sharing one
+                            estimated sigma (unweighted multi-response least squares)
     [estimate]              multistart, max_evaluations, polish, engine, integrator, rtol, atol
     [sampling]              the posterior stage (graybox.posterior)
 
@@ -43,6 +45,7 @@ TOP_KEYS = ("study", "model", "parameters", "data", "experiments", "noise", "est
 STUDY_KEYS = ("name", "seed", "dataset", "description")
 NOISE_KEYS = ("sigma", "kind", "phi", "error_time_constant", "dof")
 NOISE_KINDS = ("gaussian", "ar1", "student_t")
+GROUPS_KEY = "groups"  # [noise.groups]: outputs sharing one estimated sigma
 ESTIMATE_KEYS = ("multistart", "max_evaluations", "polish", "engine", "integrator", "rtol", "atol")
 MAX_MULTISTART = 10_000  # each start is a full least-squares fit; 10 to 100 are typical
 MAX_EVALUATIONS = 10_000_000
@@ -54,6 +57,7 @@ class NoiseSpec:
     sigma: float | None  # None: estimated
     kind: str = "gaussian"
     options: dict = field(default_factory=dict)
+    group: str | None = None  # the [noise.groups] group whose one estimated sigma it shares
 
 
 @dataclass(frozen=True)
@@ -105,6 +109,7 @@ def load_study(path: str | Path, overrides: dict | None = None, *, sample: bool 
     seed = int(st.number("seed", 0, integer=True, minimum=0))
     fit = FitSettings(
         sigmas={o: n.sigma for o, n in noise.items()},
+        groups=noise_groups(noise),
         multistart=_at_most(est, "multistart", int(est.number("multistart", 0, integer=True, minimum=0)),
                             MAX_MULTISTART, "10 to 100 starts are typical"),
         max_nfev=_at_most(est, "max_evaluations", int(est.number("max_evaluations", 2000, integer=True, minimum=10)),
@@ -141,6 +146,15 @@ def load_study(path: str | Path, overrides: dict | None = None, *, sample: bool 
     )
 
 
+def noise_groups(noise: dict[str, NoiseSpec]) -> dict[str, tuple[str, ...]]:
+    """Group -> its outputs (model order), from the outputs' NoiseSpecs."""
+    out: dict[str, list[str]] = {}
+    for o, n in noise.items():
+        if n.group is not None:
+            out.setdefault(n.group, []).append(o)
+    return {g: tuple(m) for g, m in out.items()}
+
+
 def _at_most(table: Table, key: str, value: int, limit: int, typical: str) -> int:
     """``value`` if it is at most ``limit``, else a located error."""
     if value > limit:
@@ -150,7 +164,9 @@ def _at_most(table: Table, key: str, value: int, limit: int, typical: str) -> in
 
 def check_free_values(spec: ModelSpec, fit: FitSettings, est: Table, params: Table) -> None:
     """What the least-squares stage needs of the free values, from the study file alone:
-    something to estimate, and finite bounds on every free value when multi-starting."""
+    something to estimate, every free value reaching a measured output through the
+    equations (graybox.estimate.reach), and finite bounds on every free value when
+    multi-starting."""
     from graybox.model.spec import INITIAL_ESTIMATE
 
     free = [(p.name, p.lower, p.upper) for p in spec.parameters if not p.fixed]
@@ -158,6 +174,15 @@ def check_free_values(spec: ModelSpec, fit: FitSettings, est: Table, params: Tab
     if not free:
         raise ConfigError("every parameter is fixed: there is nothing to estimate", where=params.where(),
                           hint="set fixed = false for at least one parameter")
+    from graybox.estimate.reach import unused_free_values, unused_message
+
+    for value in unused_free_values(spec):
+        message, hint = unused_message(value)
+        if value.kind == "parameter":
+            where = params.sub(value.name).where()
+        else:
+            where = Table({}, ("model", "states", value.name), params.file).where("initial")
+        raise ConfigError(message, where=where, hint=hint)
     if fit.multistart > 0:
         import math
 
@@ -204,9 +229,13 @@ def _experiments(top: Table) -> dict[str, Table]:
 
 
 def _noise(table: Table, spec: ModelSpec) -> dict[str, NoiseSpec]:
+    """Per measured output its NoiseSpec, from ``[noise.OUTPUT]`` tables and the
+    ``[noise.groups]`` table (see :func:`_noise_groups`)."""
     outputs = spec.output_names
     out = {}
     for name in table.keys():
+        if name == GROUPS_KEY:
+            continue
         if name not in outputs:
             import difflib
 
@@ -224,4 +253,72 @@ def _noise(table: Table, spec: ModelSpec) -> dict[str, NoiseSpec]:
         kind = t.string("kind", "gaussian", NOISE_KINDS)
         options = {k: t.data[k] for k in ("phi", "error_time_constant", "dof") if k in t}
         out[o] = NoiseSpec(o, value, kind, options)
-    return out
+    member_of = _noise_groups(table, spec, out)
+    return {o: replace(n, group=member_of.get(o)) for o, n in out.items()}
+
+
+def _noise_groups(table: Table, spec: ModelSpec, noise: dict[str, NoiseSpec]) -> dict[str, str]:
+    """Output -> group, from ``[noise.groups]``: each key names a group of outputs sharing one
+    estimated sigma, its value the list of their names::
+
+        [noise.groups]
+        composition = ["y1", "y2", "y3"]
+
+    Checked here, located: at least two outputs per group, each a measured output of the
+    model named once and in one group only, all in the same units (factor one) and of one
+    noise kind, none with a given sigma; a group's name is not an output's."""
+    from graybox.model.units import parse_units, same_units
+
+    if GROUPS_KEY in spec.output_names:
+        if GROUPS_KEY in table:
+            raise table.error(GROUPS_KEY, f"[noise.{GROUPS_KEY}] declares noise groups, but the model also has an "
+                                          f"output named '{GROUPS_KEY}'",
+                              hint=f"rename the output '{GROUPS_KEY}' in [model.outputs]")
+        return {}
+    groups = table.sub(GROUPS_KEY)
+    outputs = spec.output_names
+    units = {o.name: o.units for o in spec.outputs}
+    member_of: dict[str, str] = {}
+    for name in groups.keys():
+        members = groups.get(name)
+        if not isinstance(members, list) or not all(isinstance(m, str) for m in members):
+            raise groups.error(name, f"a noise group is a list of output names, got {members!r}",
+                               hint=f'e.g. {name} = ["{outputs[0]}", "{outputs[-1]}"]')
+        if name in outputs:
+            raise groups.error(name, f"the noise group '{name}' has the name of an output",
+                               hint="give the group its own name, e.g. what its outputs measure")
+        if len(members) < 2:
+            raise groups.error(name, f"the noise group '{name}' names {len(members)} output(s); a group shares one "
+                                     "sigma between two or more", hint="an output alone already has its own sigma")
+        for o in members:
+            if o not in outputs:
+                import difflib
+
+                close = difflib.get_close_matches(o, outputs, n=1)
+                raise groups.error(name, f"'{o}' is not a measured output of the model",
+                                   hint=(f"did you mean '{close[0]}'? " if close else "") +
+                                        f"outputs: {', '.join(outputs)}")
+            if members.count(o) > 1:
+                raise groups.error(name, f"'{o}' is named twice in the noise group '{name}'")
+            if o in member_of:
+                raise groups.error(name, f"output '{o}' is already in the noise group '{member_of[o]}'",
+                                   hint="an output shares its sigma with one group only")
+            if noise[o].sigma is not None:
+                t = table.sub(o)
+                raise t.error("sigma", f"output '{o}' has its sigma given, but it is in the noise group '{name}', "
+                                       "which shares one estimated sigma",
+                              hint=f"remove sigma here (or set it to \"estimate\"), or take '{o}' out of the group")
+            member_of[o] = name
+        first = members[0]
+        for o in members[1:]:
+            if not same_units(parse_units(units[first]), parse_units(units[o])):
+                raise groups.error(name, f"the outputs of the noise group '{name}' must have the same units, but "
+                                         f"'{first}' is in [{units[first] or 'dimensionless'}] and '{o}' in "
+                                         f"[{units[o] or 'dimensionless'}]",
+                                   hint="one sigma suits outputs measured in the same units; give the others their "
+                                        "own sigma")
+            if noise[o].kind != noise[first].kind:
+                raise groups.error(name, f"the outputs of the noise group '{name}' must have one noise kind, but "
+                                         f"'{first}' is {noise[first].kind} and '{o}' {noise[o].kind}",
+                                   hint="set the same kind in their [noise.OUTPUT] tables")
+    return member_of

@@ -6,10 +6,14 @@ Noise, per measured output:
   (``scale_covar=False``) and intervals use normal quantiles;
 * ``sigma`` estimated (the default): the concentrated (profile) Gaussian likelihood, whose
   stationary point is reached by reweighting: fit with weights 1/sigma_o, set
-  sigma_o^2 = SSE_o / n_o, refit until the sigmas settle.  Outputs in K and in m are then
-  weighed by their own scatter, not by their units.  For the covariance the sigmas carry the
-  usual small-sample correction n/(n - p) (exactly s^2 = SSE/(n - p) for one output, as in
-  ordinary regression), and intervals use Student-t quantiles with n - p degrees of freedom.
+  sigma_o^2 = SSE_o / n_o, refit; then Newton steps on the concentrated likelihood itself,
+  and convergence is judged by the next step's size in standard errors
+  (:mod:`graybox.estimate.noise_levels`).  Outputs in K and in m are then weighed by their
+  own scatter, not by their units.  Outputs of one noise group share one sigma, pooled:
+  sigma_g^2 = sum SSE_o / sum n_o over the group.  For the covariance the sigmas carry the
+  usual small-sample correction n/(n - p) (exactly s^2 = SSE/(n - p) for one output, or one
+  group of all outputs, as in ordinary regression), and intervals use Student-t quantiles
+  with n - p degrees of freedom.
 
 The optimiser is lmfit's ``least_squares`` (scipy's trust-region reflective method: bounds
 handled natively, so no transformation distorts the Jacobian), with the exact Jacobian from
@@ -21,9 +25,17 @@ Newton steps with the full Hessian where Gauss-Newton contracts slowly, judged b
 relative offset of the residuals rather than by SSE differences, which are rounding there
 (see ``_polish``).
 
-The covariance is (J^T J)^-1 at the optimum from an SVD (a rank-deficient Jacobian is
-reported, never silently inverted).  AIC and BIC come from the full Gaussian
-log-likelihood, constants and sigmas included, so that models can be compared later.
+Before any fitting every free value must influence an output: one that reaches no output
+through the equations, or whose Jacobian column is zero at the guess, is a user error
+naming it (it would otherwise cost every other value its standard error).
+
+The covariance is (J^T J)^-1 at the optimum from an SVD.  A rank deficiency found only at
+the optimum is reported, never silently inverted: the values the data do not determine are
+named and get no standard error, the others keep theirs, computed on the determined subspace
+(:func:`covariance_from_jacobian`).  A Wald interval never leaves the value's own bounds: it
+is clipped there and marked (``ci95_clipped``, and a note in the summary).  AIC and BIC come
+from the full Gaussian log-likelihood, constants and sigmas included, so that models can be
+compared later.
 """
 
 from __future__ import annotations
@@ -36,6 +48,9 @@ import numpy as np
 from scipy import stats
 
 from graybox.errors import FitError
+from graybox.estimate.noise_levels import (CONVERGED_STEP, REWEIGHT_SETTLED, ConcentratedLikelihood, gaussian_loglik,
+                                           ml_sigmas, needs_reweighting, sigma_groups, stationary_point)
+from graybox.estimate.point import EPS, NEGLIGIBLE_STEP, Point, evaluate, step_in_standard_errors
 from graybox.estimate.problem import Problem
 
 LOG_UNIFORM_SPAN = 100.0  # bounds spanning more than this factor are sampled log-uniformly
@@ -44,6 +59,7 @@ LOG_UNIFORM_SPAN = 100.0  # bounds spanning more than this factor are sampled lo
 @dataclass(frozen=True)
 class FitSettings:
     sigmas: dict[str, float | None] = field(default_factory=dict)  # output -> given sigma (None: estimate)
+    groups: dict[str, tuple[str, ...]] = field(default_factory=dict)  # group -> outputs sharing one estimated sigma
     multistart: int = 0
     max_nfev: int = 2000
     xtol: float = 1e-15
@@ -67,6 +83,8 @@ class ParameterEstimate:
     guess: float = float("nan")
     lower: float = -np.inf
     upper: float = np.inf
+    clipped: str | None = None  # the Wald interval was cut at this bound: "lower", "upper" or "both"
+    determined: bool = True  # False: the data do not determine it (rank-deficient Jacobian)
 
     def to_dict(self) -> dict:
         return {
@@ -79,6 +97,8 @@ class ParameterEstimate:
             "interval": "one-sided" if self.one_sided else "two-sided",
             "guess": self.guess,
             "bounds": [self.lower, self.upper],
+            "ci95_clipped": self.clipped,
+            "determined": self.determined,
         }
 
 
@@ -109,6 +129,8 @@ class FitResult:
     warnings: list[str] = field(default_factory=list)
     quantile: float = 1.96
     dof: int = 0
+    noise_groups: dict[str, list[str]] = field(default_factory=dict)  # declared groups sharing one sigma
+    reweighting: dict | None = None  # the noise-level iteration, when estimated sigmas change the weights
 
     def fit_dict(self) -> dict:
         return {
@@ -130,11 +152,26 @@ class FitResult:
             "correlation": {"names": self.names, "matrix": self.correlation.tolist()},
             "starts": self.starts,
             "warnings": self.warnings,
+            "noise_groups": self.noise_groups,
+            "reweighting": self.reweighting,
         }
 
+    def group_of(self, output: str) -> str | None:
+        """The declared noise group ``output`` shares its sigma with, if any."""
+        for name, members in self.noise_groups.items():
+            if output in members:
+                return name
+        return None
+
     def noise_dict(self) -> dict:
-        return {o: {"sigma": self.sigmas[o], "estimated": self.sigma_estimated[o], "n_obs": self.n_obs_per_output[o]}
-                for o in self.sigmas}
+        out = {}
+        for o in self.sigmas:
+            group = self.group_of(o)
+            members = self.noise_groups.get(group, [])
+            out[o] = {"sigma": self.sigmas[o], "estimated": self.sigma_estimated[o], "n_obs": self.n_obs_per_output[o],
+                      "group": group, "shared_with": [m for m in members if m != o],
+                      "group_n_obs": sum(self.n_obs_per_output[m] for m in members) if group else None}
+        return out
 
     def summary(self) -> str:
         from graybox.estimate.summary import fit_summary
@@ -193,56 +230,9 @@ def _sse(problem: Problem, x: np.ndarray, sigmas: np.ndarray) -> float:
     return float(r @ r) if np.all(np.isfinite(r)) else np.inf
 
 
-EPS = np.finfo(float).eps
 SLOW_CONTRACTION = 0.1  # Gauss-Newton offsets shrinking slower than this per step: switch to Newton
-NEGLIGIBLE_STEP = 1e-9  # polishing stops once no value would move by this fraction of its std. error
-
-
-@dataclass
-class _Point:
-    """Residuals, Jacobian and the derived convergence measures at one free vector."""
-
-    x: np.ndarray
-    r: np.ndarray
-    J: np.ndarray
-    sse: float
-    offset: float  # relative offset ||P_J r|| / ||r|| (0 at a stationary point)
-    gn_step: np.ndarray
-    se: np.ndarray  # s * sqrt(diag((J^T J)^-1)), s^2 = SSE/(n - p): each value's uncertainty
-
-    def step_is_negligible(self) -> bool:
-        """The Gauss-Newton step moves no value by more than NEGLIGIBLE_STEP of its standard
-        error: further digits are below what the data (or the integration tolerance of a
-        dynamic model) can mean."""
-        with np.errstate(divide="ignore", invalid="ignore"):
-            ratio = np.abs(self.gn_step) / self.se
-        return bool(np.all(np.isfinite(ratio)) and ratio.max(initial=0.0) < NEGLIGIBLE_STEP)
-
-
-def _evaluate(problem: Problem, x: np.ndarray, sigmas: np.ndarray) -> _Point | None:
-    """The point at ``x``, or None where the model fails there."""
-    r = problem.residuals(x, sigmas)
-    if not np.all(np.isfinite(r)):
-        return None
-    J = problem.jacobian(x, sigmas)
-    if not np.all(np.isfinite(J)):
-        return None
-    scale = np.linalg.norm(J, axis=0)
-    scale[scale == 0] = 1.0
-    try:
-        U, s, Vt = np.linalg.svd(J / scale, full_matrices=False)
-    except np.linalg.LinAlgError:
-        return None
-    keep = s > s.max(initial=0.0) * max(J.shape) * EPS
-    ur = U[:, keep].T @ r
-    norm_r = float(np.linalg.norm(r))
-    offset = float(np.linalg.norm(ur) / norm_r) if norm_r > 0 else 0.0
-    step = -(Vt[keep].T @ (ur / s[keep])) / scale
-    dof = max(r.size - x.size, 1)
-    # the residual scale enters: the weights may still be provisional (sigma = 1 before the
-    # first reweighting), and the step is judged against the uncertainty the data imply
-    se = np.sqrt(np.sum((Vt[keep] / s[keep, None]) ** 2, axis=0)) / scale * np.sqrt(float(r @ r) / dof)
-    return _Point(x, r, J, float(r @ r), offset, step, se)
+_Point = Point
+_evaluate = evaluate
 
 
 def _sse_rounding(problem: Problem, point: _Point, sigmas: np.ndarray) -> float:
@@ -347,39 +337,83 @@ def _latin_starts(problem: Problem, n: int, rng: np.random.Generator) -> np.ndar
     return starts
 
 
-def covariance_from_jacobian(J: np.ndarray) -> tuple[np.ndarray, int, float]:
-    """(J^T J)^-1 by SVD; returns the covariance (NaN rows/cols for directions the data do
-    not determine), the numerical rank and the condition number of J."""
+@dataclass(frozen=True)
+class Covariance:
+    """(J^T J)^-1 of a weighted Jacobian, or its part the data determine."""
+
+    matrix: np.ndarray  # NaN in the rows and columns of undetermined values
+    rank: int
+    condition: float
+    determined: np.ndarray  # per free value: whether the data determine it
+
+
+DETERMINED_TOL = 1.5e-8  # a value is determined when its unit vector has at most this in J's null space
+
+
+def covariance_from_jacobian(J: np.ndarray) -> Covariance:
+    """(J^T J)^-1 by SVD in column-scaled variables.
+
+    With full rank the inverse.  With a rank deficiency the data do not determine some
+    directions; a value is still determined when its unit vector e_j is orthogonal to the
+    null space of J (e_j lies in the row space: an estimable function, whose variance
+    e_j^T (J^T J)^- e_j is the same for every generalised inverse, the Moore-Penrose one
+    included; e.g. Searle, *Linear Models*, ch. 5 -- from memory).  Those values get their
+    variances and covariances from the pseudo-inverse (exactly what they would have with the
+    undetermined values fixed at their estimates); the undetermined ones get NaN."""
     n = J.shape[1]
     scale = np.linalg.norm(J, axis=0)
     scale[scale == 0] = 1.0
     try:
-        U, s, Vt = np.linalg.svd(J / scale, full_matrices=False)
+        U, s, Vt = np.linalg.svd(J / scale, full_matrices=True)
     except np.linalg.LinAlgError:  # e.g. noise-free data: weights blow up, no covariance
-        return np.full((n, n), np.nan), 0, np.inf
-    tol = s.max(initial=0.0) * max(J.shape) * np.finfo(float).eps
+        return Covariance(np.full((n, n), np.nan), 0, np.inf, np.zeros(n, bool))
+    s = s[:n] if s.size >= n else np.concatenate([s, np.zeros(n - s.size)])
+    tol = s.max(initial=0.0) * max(J.shape) * EPS
     rank = int(np.sum(s > tol))
     cond = float(s[0] / s[-1]) if s.size and s[-1] > 0 else np.inf
-    if rank < n:
-        cov = np.full((n, n), np.nan)
-        # still report what is determined: the pseudo-inverse on the determined subspace
-        return cov, rank, cond
-    inv = (Vt.T / s**2) @ Vt
+    keep = s > tol
+    inv = (Vt[keep].T / s[keep] ** 2) @ Vt[keep]
     cov = inv / np.outer(scale, scale)
-    return cov, rank, cond
+    null = Vt[~keep]
+    determined = np.max(np.abs(null), axis=0, initial=0.0) <= DETERMINED_TOL
+    cov[~determined, :] = np.nan
+    cov[:, ~determined] = np.nan
+    return Covariance(cov, rank, cond, determined)
+
+
+def check_influence(problem: Problem, x0: np.ndarray, sigmas: np.ndarray) -> None:
+    """Every free value must influence some measured output: structurally (it reaches an
+    output through the equations) and at the initial guess (its Jacobian column is not zero
+    there).  Otherwise a user error naming it, before any fitting."""
+    from graybox.estimate.reach import unused_free_values, unused_message
+
+    for value in unused_free_values(problem.spec):
+        message, hint = unused_message(value)
+        raise FitError(message, hint=hint)
+    J = problem.jacobian(x0, sigmas)
+    dead = [j for j in range(J.shape[1]) if np.all(J[:, j] == 0)]
+    if dead:
+        names = ", ".join(f"{problem.names[j]} = {x0[j]:.6g}" for j in dead)
+        raise FitError(f"no measured output depends on {names} at the initial guess (zero Jacobian column): "
+                       "the fit could not move it, and its column would cost every other value its standard error",
+                       hint="the data may not excite it (e.g. its input is zero throughout) or the guesses switch "
+                            "it off (e.g. a product with a value guessed 0): change the guess, fix it, or remove it")
 
 
 def fit(problem: Problem, settings: FitSettings = FitSettings()) -> FitResult:
-    """Estimate the free values; see the module docstring for the statistics."""
+    """Estimate the free values; see the module docstring for the statistics and
+    :mod:`graybox.estimate.noise_levels` for estimated (and shared) sigmas."""
     t_start = time.perf_counter()
     outputs = problem.spec.output_names
     given = {o: settings.sigmas.get(o) for o in outputs}
+    groups = sigma_groups(outputs, given, settings.groups)
     estimated = {o: given[o] is None for o in outputs}
     sig = np.array([given[o] if given[o] is not None else 1.0 for o in outputs], dtype=float)
     x0 = problem.guess()
     check_start(problem, x0, sig)
-    if any(estimated.values()):
-        sig = _update_sigmas(problem, x0, sig, estimated, outputs)
+    check_influence(problem, x0, sig)
+    if groups:
+        sig = _update_sigmas(problem, x0, sig, groups)
 
     starts_info = []
     candidates = [x0]
@@ -389,82 +423,128 @@ def fit(problem: Problem, settings: FitSettings = FitSettings()) -> FitResult:
 
     best = None
     for i, start in enumerate(candidates):
-        x, conv, msg, nfev, sig_i = _fit_from(problem, start, sig.copy(), estimated, outputs, settings)
+        x, conv, msg, nfev, sig_i, passes = _fit_from(problem, start, sig.copy(), groups, outputs, settings)
         s_out, _ = problem.sse_per_output(x)
-        ll = _loglik(s_out[0], sig_i, problem, outputs, estimated)
+        ll = _loglik(s_out[0], sig_i, problem, outputs, groups)
         starts_info.append({"start": [float(v) for v in start], "estimate": [float(v) for v in x],
                             "loglik": float(ll), "converged": bool(conv)})
         if best is None or ll > best[5]:
-            best = (x, conv, msg, nfev, sig_i, ll)
-    x, converged, message, nfev, sig, loglik = best
-    return _result(problem, x, sig, estimated, outputs, converged, message, nfev, starts_info,
-                   time.perf_counter() - t_start, settings)
+            best = (x, conv, msg, nfev, sig_i, ll, passes)
+    x, converged, message, nfev, sig, loglik, passes = best
+    reweighting = None
+    if needs_reweighting(groups, len(outputs)):
+        x, sig, converged, message, reweighting = _settle_noise_levels(problem, x, sig, groups, converged, message,
+                                                                      passes, settings)
+    return _result(problem, x, sig, estimated, groups, outputs, converged, message, nfev, starts_info,
+                   time.perf_counter() - t_start, settings, reweighting)
 
 
-def _fit_from(problem, start, sig, estimated, outputs, st: FitSettings):
+def _fit_from(problem, start, sig, groups, outputs, st: FitSettings):
+    """Least squares from ``start``; with estimated sigmas that change the relative weights,
+    reweighting passes until a pass moves no value by more than REWEIGHT_SETTLED of its
+    standard error (or ``max_reweight`` passes).  Returns x, converged, message, nfev,
+    sigmas, passes."""
     lo, hi = problem.bounds()
     start = np.clip(start, lo, hi)
     nfev_total = 0
     x = start
     converged, message = False, ""
-    for _ in range(st.max_reweight if any(estimated.values()) else 1):
+    reweight = needs_reweighting(groups, len(outputs))
+    passes = 0
+    for _ in range(st.max_reweight if reweight else 1):
+        x_before = x
         x, converged, message, nfev = _least_squares(problem, x, sig, st)
         nfev_total += nfev
+        passes += 1
         if st.polish:
             x, _ = _polish(problem, x, sig)
-        if not any(estimated.values()):
+        if not groups:
             break
-        new = _update_sigmas(problem, x, sig, estimated, outputs)
-        change = np.max(np.abs(new - sig) / sig)
-        sig = new
-        if change < 1e-10 or len(outputs) == 1:
+        sig = _update_sigmas(problem, x, sig, groups)
+        if not reweight:
             break
-    else:
-        message += "; noise levels still changing at the reweighting limit"
+        point = _evaluate(problem, x, sig)
+        if point is not None and step_in_standard_errors(x - x_before, point.se) < REWEIGHT_SETTLED:
+            break
+    return x, converged, message, nfev_total, sig, passes
+
+
+def _settle_noise_levels(problem, x, sig, groups, converged, message, passes, st: FitSettings):
+    """Newton steps on the concentrated likelihood from the best reweighted point (unless
+    polishing is off), then the convergence judgement of graybox.estimate.noise_levels."""
+    given = np.array([st.sigmas.get(o) or np.nan for o in problem.spec.output_names], float)
+    lik = ConcentratedLikelihood(problem, given, groups)
+    where = stationary_point(lik, x, sig, move=st.polish)
+    if np.isfinite(where.measure):
+        x, sig = where.x, where.sig
+    info = {"passes": passes, "newton_steps": where.steps, "last_step": where.kind,
+            "step_in_std_errors": where.measure, "criterion_std_errors": CONVERGED_STEP}
+    if not where.converged:
+        name = problem.names[where.worst]
+        message += (f"; noise levels still changing at the reweighting limit: the next step on the concentrated "
+                    f"likelihood would move {name} by {where.measure:.3g} standard errors (converged below "
+                    f"{CONVERGED_STEP:g})")
         converged = False
-    return x, converged, message, nfev_total, sig
+    info["converged"] = where.converged
+    return x, sig, converged, message, info
 
 
-def _update_sigmas(problem, x, sig, estimated, outputs) -> np.ndarray:
-    """Maximum-likelihood sigmas for the estimated outputs: sqrt(SSE_o / n_o)."""
-    sse, ok = problem.sse_per_output(x)
-    new = sig.copy()
-    for r, o in enumerate(outputs):
-        if estimated[o]:
-            n_o = problem.n_obs_per_output[o]
-            new[r] = max(np.sqrt(sse[0, r] / n_o), 1e-300) if np.isfinite(sse[0, r]) else sig[r]
-    return new
+def _update_sigmas(problem, x, sig, groups) -> np.ndarray:
+    """Maximum-likelihood sigmas of the estimated groups at ``x`` (pooled over each group's
+    outputs); given sigmas, and any that cannot be computed there, kept."""
+    sse, _ = problem.sse_per_output(x)
+    n_o = np.array([problem.n_obs_per_output[o] for o in problem.spec.output_names], float)
+    new = ml_sigmas(sse[0], n_o, sig, groups)
+    return np.where(np.isfinite(new), new, sig)
 
 
-def _loglik(sse_o: np.ndarray, sig: np.ndarray, problem, outputs, estimated) -> float:
+def _loglik(sse_o: np.ndarray, sig: np.ndarray, problem, outputs, groups) -> float:
     """Full Gaussian log-likelihood; estimated sigmas at their maximum-likelihood values."""
-    ll = 0.0
-    for r, o in enumerate(outputs):
-        n_o = problem.n_obs_per_output[o]
-        s2 = sse_o[r] / n_o if estimated[o] else sig[r] ** 2
-        if not np.isfinite(sse_o[r]) or s2 <= 0:
-            return -np.inf
-        ll += -0.5 * (n_o * np.log(2 * np.pi * s2) + sse_o[r] / s2)
-    return float(ll)
+    n_o = np.array([problem.n_obs_per_output[o] for o in outputs], float)
+    return gaussian_loglik(sse_o, n_o, sig, groups)
 
 
-def _result(problem: Problem, x, sig, estimated, outputs, converged, message, nfev, starts, wall, st) -> FitResult:
+def wald_interval(x: float, se: float, lo: float, hi: float, q: float, q1: float,
+                  at: str | None) -> tuple[tuple[float, float], str | None]:
+    """The 95% interval of one value and where it was clipped at the value's own bounds.
+
+    Two-sided x -/+ q se inside the bounds; at a bound, one-sided from that bound to
+    x +/- q1 se (q1 the one-sided 95% quantile).  An end beyond the other bound (or, two-
+    sided, beyond either) is moved to the bound and reported: "lower", "upper" or "both"."""
+    if at == "lower":
+        a, b = lo, x + q1 * se
+    elif at == "upper":
+        a, b = x - q1 * se, hi
+    else:
+        a, b = x - q * se, x + q * se
+    low_cut = at != "lower" and a < lo
+    high_cut = at != "upper" and b > hi
+    a, b = max(a, lo), min(b, hi)
+    clipped = "both" if low_cut and high_cut else "lower" if low_cut else "upper" if high_cut else None
+    return (float(a), float(b)), clipped
+
+
+def _result(problem: Problem, x, sig, estimated, groups, outputs, converged, message, nfev, starts, wall, st,
+            reweighting=None) -> FitResult:
     n, p = problem.n_obs, problem.n_free
     sse_o, _ = problem.sse_per_output(x)
     sse_o = sse_o[0]
-    loglik = _loglik(sse_o, sig, problem, outputs, estimated)
-    k = p + sum(estimated.values())
+    n_o = np.array([problem.n_obs_per_output[o] for o in outputs], float)
+    given = np.array([sig[r] if not estimated[o] else np.nan for r, o in enumerate(outputs)])
+    loglik = gaussian_loglik(sse_o, n_o, given, groups)
+    k = p + len(groups)
     dof = n - p
     if dof <= 0:
         raise FitError(f"{n} observations cannot determine {p} free values", hint="add data or fix parameters")
-    # sigmas for the covariance: small-sample corrected where estimated
-    sig_cov = np.array([np.sqrt(sse_o[r] / problem.n_obs_per_output[o] * n / dof) if estimated[o] else sig[r]
-                        for r, o in enumerate(outputs)])
+    # sigmas for the covariance: each group's pooled ML sigma, small-sample corrected by n/(n - p)
+    sig_ml = ml_sigmas(sse_o, n_o, np.where(np.isnan(given), 1.0, given), groups)
+    sig_cov = np.array([np.sqrt(sig_ml[r] ** 2 * n / dof) if estimated[o] else sig[r] for r, o in enumerate(outputs)])
     J = problem.jacobian(x, sig_cov)
-    cov, rank, cond = covariance_from_jacobian(J)
-    se = np.sqrt(np.diag(cov)) if rank == p else np.full(p, np.nan)
-    q = float(stats.t.ppf(0.975, dof)) if any(estimated.values()) else float(stats.norm.ppf(0.975))
-    q1 = float(stats.t.ppf(0.95, dof)) if any(estimated.values()) else float(stats.norm.ppf(0.95))
+    cv = covariance_from_jacobian(J)
+    cov, rank, cond = cv.matrix, cv.rank, cv.condition
+    se = np.sqrt(np.diag(cov))
+    q = float(stats.t.ppf(0.975, dof)) if groups else float(stats.norm.ppf(0.975))
+    q1 = float(stats.t.ppf(0.95, dof)) if groups else float(stats.norm.ppf(0.95))
     lo, hi = problem.bounds()
     warnings: list[str] = []
     params: dict[str, ParameterEstimate] = {}
@@ -475,26 +555,31 @@ def _result(problem: Problem, x, sig, estimated, outputs, converged, message, nf
             at = "lower"
         elif np.isfinite(hi[j]) and hi[j] - x[j] <= tol_b:
             at = "upper"
-        if at == "lower":
-            ci = (float(lo[j]), float(min(hi[j], x[j] + q1 * se[j])))
-        elif at == "upper":
-            ci = (float(max(lo[j], x[j] - q1 * se[j])), float(hi[j]))
-        else:
-            ci = (float(x[j] - q * se[j]), float(x[j] + q * se[j]))
+        ci, clipped = wald_interval(float(x[j]), float(se[j]), float(lo[j]), float(hi[j]), q, q1, at)
         if at:
             warnings.append(f"{f.name} is at its {at} bound ({x[j]:.6g}): its interval is one-sided and the "
                             "bound, not the data, decides the estimate")
+        if clipped:
+            side = "both bounds" if clipped == "both" else f"its {clipped} bound"
+            warnings.append(f"the 95% interval of {f.name} is clipped at {side}: the Wald interval reaches beyond "
+                            "the values it may take, so near that bound it is not to be trusted (the data hardly "
+                            "determine it there)")
         params[f.name] = ParameterEstimate(f.name, float(x[j]), float(se[j]), ci, f.units, False, at, at is not None,
-                                           f.guess, float(lo[j]), float(hi[j]))
+                                           f.guess, float(lo[j]), float(hi[j]), clipped, bool(cv.determined[j]))
     for k_, pdef in enumerate(problem.spec.parameters):
         if pdef.fixed:
             params[pdef.name] = ParameterEstimate(pdef.name, pdef.guess, 0.0, (pdef.guess, pdef.guess), pdef.units,
                                                   True, None, False, pdef.guess, pdef.lower, pdef.upper)
     if rank < p:
-        warnings.append(f"the Jacobian has rank {rank} < {p}: the data do not determine every free value "
-                        "(covariance not available); fix or reparametrise the unidentifiable ones")
+        bad = [f.name for j, f in enumerate(problem.free) if not cv.determined[j]]
+        warnings.append(f"the Jacobian has rank {rank} < {p} at the estimate: the data do not determine "
+                        f"{', '.join(bad) if bad else 'some combination of the free values'} (standard errors not "
+                        "available for them); the others' standard errors are those on the determined subspace, "
+                        "as if the undetermined were fixed at their estimates; fix or reparametrise the "
+                        "undetermined ones")
     with np.errstate(invalid="ignore", divide="ignore"):
         corr = cov / np.outer(se, se)
+    shared = {g.name: [outputs[m] for m in g.members] for g in groups if g.declared}
     return FitResult(
         names=problem.names, x=x, parameters=params, covariance=cov, correlation=corr,
         sigmas={o: float(sig_cov[r]) if estimated[o] else float(sig[r]) for r, o in enumerate(outputs)},
@@ -503,5 +588,5 @@ def _result(problem: Problem, x, sig, estimated, outputs, converged, message, nf
         n_obs_per_output=dict(problem.n_obs_per_output), n_free=p, loglik=loglik,
         aic=float(2 * k - 2 * loglik), bic=float(k * np.log(n) - 2 * loglik), converged=converged,
         message=message, nfev=nfev, rank=rank, condition=cond, starts=starts, wall_s=wall,
-        warnings=warnings, quantile=q, dof=dof,
+        warnings=warnings, quantile=q, dof=dof, noise_groups=shared, reweighting=reweighting,
     )

@@ -26,15 +26,33 @@ def fit_summary(res) -> str:
             rel = abs(p.stderr / p.estimate) if p.estimate else float("inf")
             if not p.at_bound and rel > 0.5:
                 note = "poorly determined (std. error > 50%)"
+            if not p.determined:
+                note = "NOT DETERMINED by the data (no std. error)"
+            if p.clipped:
+                side = "both bounds" if p.clipped == "both" else f"{p.clipped} bound"
+                note = "; ".join(filter(None, [note, f"interval clipped at the {side}"]))
             interval = f"[{_fmt(p.ci95[0])}, {_fmt(p.ci95[1])}]"
             se = _fmt(p.stderr)
         lines.append(f"{name:<22} {_fmt(p.estimate):>13} {se:>12} {interval:>29}  {p.units:<10} {note}")
-    lines += ["", f"{'output':<22} {'sigma':>13} {'':>12} {'observations':>12}"]
+    lines += ["", f"{'output':<22} {'sigma':>13} {'':>12} {'observations':>12}  shared"]
+    groups = getattr(res, "noise_groups", {}) or {}
     for o, s in res.sigmas.items():
         how = "estimated" if res.sigma_estimated[o] else "given"
-        lines.append(f"{o:<22} {_fmt(s):>13} {how:>12} {res.n_obs_per_output[o]:>12}")
+        group = next((g for g, members in groups.items() if o in members), None)
+        shared = f"group '{group}'" if group else ""
+        lines.append(f"{o:<22} {_fmt(s):>13} {how:>12} {res.n_obs_per_output[o]:>12}  {shared}".rstrip())
+    for g, members in groups.items():
+        n_g = sum(res.n_obs_per_output[m] for m in members)
+        lines.append(f"noise group '{g}': one sigma shared by {', '.join(members)} "
+                     f"(pooled: sum of their SSE over {n_g} observations)")
     lines += ["", f"SSE {_fmt(res.sse)}   log-likelihood {_fmt(res.loglik)}   AIC {_fmt(res.aic)}   "
                   f"BIC {_fmt(res.bic)}   Jacobian rank {res.rank}/{res.n_free}, condition {_fmt(res.condition)}"]
+    rw = getattr(res, "reweighting", None)
+    if rw:
+        lines.append(f"noise levels: {rw['passes']} reweighting pass(es), {rw['newton_steps']} Newton step(s) on the "
+                     f"concentrated likelihood; the next step would move no value by more than "
+                     f"{_fmt(rw['step_in_std_errors'])} standard errors (converged below "
+                     f"{_fmt(rw['criterion_std_errors'])})")
     strong = []
     names = res.names
     for i in range(len(names)):

@@ -23,12 +23,16 @@ Jeffreys prior of a scale); phi for an AR(1) output with neither ``phi`` nor
 ``error_time_constant`` given (uniform on [0, 1)); ln nu for a Student-t output without
 ``dof`` (nu ~ Gamma(2, rate 0.1), truncated to [1, 1000], the prior of Juarez & Steel,
 JASA 105 (2010) 1219-1231, as recommended in the Stan prior-choice notes; from memory).
+Outputs of a noise group (``[noise.groups]``, outputs in the same units) share one sampled
+ln sigma, named ``sigma[GROUP]`` and laid out at the group's first output; every output of
+the group reads its sigma from it (:meth:`NoiseParam.applies_to`), so the likelihood is
+that of one sigma for all the group's residuals.
 """
 
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
@@ -56,6 +60,8 @@ class NoiseModel:
     phi: float | None = None  # AR(1) correlation at the reference spacing, given
     tau_e: float | None = None  # AR(1) error time constant in seconds, given
     dof: float | None = None  # Student-t degrees of freedom, given
+    group: str | None = None  # the noise group whose one sigma it shares ([noise.groups])
+    shared_with: tuple[str, ...] = ()  # the group's other outputs
 
     @property
     def samples_phi(self) -> bool:
@@ -67,6 +73,8 @@ class NoiseModel:
 
     def describe(self) -> str:
         sig = "sigma sampled" if self.sigma is None else f"sigma = {self.sigma:g} given"
+        if self.group is not None:
+            sig = f"sigma[{self.group}] sampled, shared with {', '.join(self.shared_with)}"
         if self.kind == KIND_GAUSSIAN:
             return f"independent Gaussian errors, {sig}"
         if self.kind == KIND_AR1:
@@ -90,6 +98,11 @@ class NoiseParam:
     what: str  # "log_sigma", "phi" or "log_nu"
     lower: float  # in the sampled space
     upper: float
+    shared: tuple[str, ...] = ()  # further outputs whose sigma this is (a noise group; ``output`` is its first)
+
+    def applies_to(self, output: str) -> bool:
+        """Whether this parameter belongs to ``output`` (its own, or its group's shared sigma)."""
+        return output == self.output or output in self.shared
 
     def to_natural(self, z: np.ndarray) -> np.ndarray:
         return np.exp(z) if self.what in ("log_sigma", "log_nu") else np.asarray(z, float)
@@ -122,12 +135,25 @@ def noise_models(noise: dict, outputs: list[str], file: Path | None = None) -> l
     """Validate the ``NoiseSpec`` of every output (``noise``: output -> NoiseSpec; outputs
     without one get sampled-sigma Gaussian noise)."""
     models = []
+    groups: dict[str, list[str]] = {}
+    for o in outputs:
+        spec = noise.get(o)
+        if spec is not None and getattr(spec, "group", None) is not None:
+            groups.setdefault(spec.group, []).append(o)
     for o in outputs:
         spec = noise.get(o)
         if spec is None:
             models.append(NoiseModel(o, KIND_GAUSSIAN, None))
             continue
-        models.append(_noise_model(spec, Table(dict(spec.options), ("noise", o), file)))
+        m = _noise_model(spec, Table(dict(spec.options), ("noise", o), file))
+        group = getattr(spec, "group", None)
+        if group is not None:
+            if m.sigma is not None:
+                raise SampleError(f"output '{o}' has its sigma given, but it is in the noise group '{group}', "
+                                  "which shares one sampled sigma", where=Table({}, ("noise", o), file).where("sigma"),
+                                  hint=f"remove its sigma, or take '{o}' out of the group")
+            m = replace(m, group=group, shared_with=tuple(g for g in groups[group] if g != o))
+        models.append(m)
     return models
 
 
@@ -178,11 +204,17 @@ def _sample_error(t: Table, key: str | None, message: str, hint: str | None = No
 
 
 def noise_params(models: list[NoiseModel]) -> list[NoiseParam]:
-    """The sampled noise parameters, in layout order."""
+    """The sampled noise parameters, in layout order: per output its ln sigma (one per noise
+    group, at the group's first output and shared by the others), phi and ln nu."""
     out = []
+    seen_groups: set[str] = set()
     for m in models:
-        if m.sigma is None:
+        if m.sigma is None and m.group is None:
             out.append(NoiseParam(f"sigma[{m.output}]", m.output, "log_sigma", -math.inf, math.inf))
+        elif m.sigma is None and m.group not in seen_groups:
+            seen_groups.add(m.group)
+            out.append(NoiseParam(f"sigma[{m.group}]", m.output, "log_sigma", -math.inf, math.inf,
+                                  shared=m.shared_with))
         if m.samples_phi:
             out.append(NoiseParam(f"phi[{m.output}]", m.output, "phi", 0.0, PHI_UPPER))
         if m.samples_nu:
@@ -332,7 +364,7 @@ class NoiseLayout:
         phi = np.full(n_sets, m.phi) if m.phi is not None else None
         nu = np.full(n_sets, m.dof) if m.dof is not None else None
         for k, p in enumerate(self.params):
-            if p.output != output:
+            if not p.applies_to(output):
                 continue
             v = p.to_natural(N[:, k])
             if p.what == "log_sigma":
