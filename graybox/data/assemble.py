@@ -8,15 +8,15 @@ Order of work per tag (each step a small function below):
    does not exist are masked with that reason, and each clock change met is reported;
 3. selected windows kept, excluded windows dropped, samples before the experiment's start
    dropped (counted; the start: see timestamps.experiment_start);
-4. values that are not numbers (NaN) or infinite masked and counted, each its own reason;
-5. sorted by time (stably; rows stamped earlier than the row before them in their file are
+4. sorted by time (stably; rows stamped earlier than the row before them in their file are
    counted and the first named); exact duplicates (same time, value and flag) dropped; of
    conflicting duplicates (same time, another value) the first recorded is kept, the others
    are counted and one example is named;
-6. on the rows as logged: quality flag, valid range (in the tag's own units), stuck runs
-   (measured outputs by default, see quality.py), and the tag's usual interval;
-7. report-by-exception tags: held repeats (unmasked rows equal to the row before) dropped;
-8. units into the model's, spikes.
+5. on the rows as logged: values that are not numbers (NaN) or infinite, quality flag, valid
+   range (in the tag's own units), stuck runs (measured outputs by default, see quality.py),
+   and the tag's usual interval;
+6. report-by-exception tags: held repeats (unmasked rows equal to the row before) dropped;
+7. units into the model's, spikes.
 
 Outputs keep every sample with a mask; inputs lose their masked samples (the last good
 value holds).  Input gaps longer than the gap limit (see gaps.py: by default "auto", from
@@ -253,7 +253,7 @@ def _dedupe(t, v, q):
         return order, 0, 0, None
     # compare each duplicate with the first row of its time
     first_of = np.maximum.accumulate(np.where(~same_t, np.arange(ts.size), 0))
-    same_v = vs == vs[first_of]
+    same_v = (vs == vs[first_of]) | (np.isnan(vs) & np.isnan(vs[first_of]))
     if q is not None:
         qs = q[order]
         same_v &= qs == qs[first_of]
@@ -329,15 +329,6 @@ def process_tag(tg: TagSpec, chunks: list[Chunk], spec: DataSpec, conv: Conversi
         early = keep & (t < start)
         before_start = int(early.sum())
         keep &= ~early
-    n_nan = n_inf = 0
-    if nan is not None:
-        not_number = keep & nan
-        n_nan = int(not_number.sum())
-        keep &= ~not_number
-    infinite = keep & np.isinf(v)
-    if infinite.any():
-        n_inf = int(infinite.sum())
-        keep &= ~infinite
     idx = None if keep.all() else np.flatnonzero(keep)
     if idx is not None:
         t, v = t[idx], v[idx]
@@ -354,11 +345,19 @@ def process_tag(tg: TagSpec, chunks: list[Chunk], spec: DataSpec, conv: Conversi
         t, v = t[order], v[order]
         q = q[order] if q is not None else None
     # judged on the rows as logged, before any held repeat is thinned
+    span = (int(t[0]), int(t[-1])) if t.size else (None, None)
     median_s, spread_s = _interval_stats(t)
     rule = gap_rule(tg, spec, median_s)
     bad_range = out_of_range(v, tg.valid)
     bq = bad_quality(q, list(quality_texts), spec.good_quality)
     pre_bad = bad_range | bq if bq is not None else bad_range
+    not_number = np.isnan(v) if nan is not None else None  # rows with a value: a NaN here is a value
+    infinite = np.isinf(v)
+    if not infinite.any():
+        infinite = None
+    for m in (not_number, infinite):
+        if m is not None:
+            pre_bad = pre_bad | m
     usable = ~pre_bad
     runs = stuck_runs(t, v, usable, tg.deadband, stuck_limit(tg.role, tg.stuck_after, spec.stuck_after))
     st = np.zeros(t.size, bool)
@@ -380,9 +379,15 @@ def process_tag(tg: TagSpec, chunks: list[Chunk], spec: DataSpec, conv: Conversi
                 repeats_in_stuck = int((dropped & st).sum())
             t, v, bad_range, st, pre_bad = t[kept], v[kept], bad_range[kept], st[kept], pre_bad[kept]
             bq = bq[kept] if bq is not None else None
+            not_number = not_number[kept] if not_number is not None else None
+            infinite = infinite[kept] if infinite is not None else None
     judged = {REASON_RANGE: bad_range}
     if bq is not None:
         judged[REASON_QUALITY] = bq
+    if not_number is not None:
+        judged[REASON_NAN] = not_number
+    if infinite is not None:
+        judged[REASON_INF] = infinite
     values = conv.apply(v)
     if spec.spikes is not None:
         floor = tg.deadband * abs(conv.scale)
@@ -394,10 +399,6 @@ def process_tag(tg: TagSpec, chunks: list[Chunk], spec: DataSpec, conv: Conversi
         flagged[REASON_STUCK] = n_stuck
     masked_now, counts = count_first_reasons(judged)
     masked = {REASON_NONEXISTENT: n_nonexistent} if n_nonexistent else {}
-    if n_nan:
-        masked[REASON_NAN] = n_nan
-    if n_inf:
-        masked[REASON_INF] = n_inf
     masked.update(counts)
     use = ~masked_now
     logged = t_rows[use[owner]] if t_rows is not None else None  # a repeat is usable as its value is
@@ -405,7 +406,8 @@ def process_tag(tg: TagSpec, chunks: list[Chunk], spec: DataSpec, conv: Conversi
     stats = dict(files=tuple(dict.fromkeys(str(spec.files[c.file]) for c in chunks)), rows_read=rows_read,
                  blank=blank, masked=masked, flagged=flagged, exact=n_exact, conflict=n_conflict,
                  conflict_example=conflict_text, repeats=repeats, repeats_in_stuck=repeats_in_stuck,
-                 outside=outside, before_start=before_start, out_of_order=n_back, out_of_order_example=back_text)
+                 outside=outside, before_start=before_start, out_of_order=n_back, out_of_order_example=back_text,
+                 span=span)
     return TagData(tg, t, values, use, st, conv, stats, logged, rule, gaps, median_s, spread_s, runs_ns)
 
 
@@ -488,8 +490,8 @@ def _tag_report(td: TagData, spec: DataSpec, start: int | None, end: int | None)
     action = "masked" if spec.stuck_action == "mask" else "flagged, not masked"
     return TagReport(
         symbol=td.spec.symbol, tag=td.spec.tag, role=td.spec.role, files=s["files"], rows_read=s["rows_read"],
-        blank_cells=s["blank"], first_utc=iso(int(t[0])) if t.size else None,
-        last_utc=iso(int(t[-1])) if t.size else None, median_interval_s=med, interval_spread_s=spread,
+        blank_cells=s["blank"], first_utc=iso(s["span"][0]), last_utc=iso(s["span"][1]),
+        median_interval_s=med, interval_spread_s=spread,
         coverage_pct=cover, valid=int(use.sum()), masked=s["masked"], flagged=s["flagged"],
         exact_duplicates=s["exact"], conflicting_duplicates=s["conflict"], conflict_example=s["conflict_example"],
         held_repeats_dropped=s["repeats"], outside_windows=s["outside"], conversion=td.conversion.text,

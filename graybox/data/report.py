@@ -144,7 +144,8 @@ class DataReport:
             if t.blank_cells:
                 details.append(f"{t.blank_cells} cells without a value")
             if t.gaps:
-                details.append(f"{t.gaps} gaps over {duration_text(t.gap_limit_s)} (longest {duration_text(t.longest_gap_s)})")
+                details.append(f"{t.gaps} gap{'s' if t.gaps != 1 else ''} over {duration_text(t.gap_limit_s)} "
+                               f"(longest {duration_text(t.longest_gap_s)})")
             details.append(f"gap limit {duration_text(t.gap_limit_s) if t.gap_limit_s else 'none'} ({t.gap_rule})"
                            if t.gap_rule else "")
             details.append(f"stuck after {duration_text(t.stuck_after_s)}" if t.stuck_after_s else "stuck: not judged")
