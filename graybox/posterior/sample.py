@@ -14,23 +14,32 @@ estimated initial states) and the noise parameters, with the priors of
   diagonal ball of relative size 1e-3 is used instead (the sampler dictionary says which).
 * Randomness: one ``numpy.random.Generator`` from the seed draws the ball and seeds emcee's
   legacy ``RandomState``, so a seed fixes every number.
-* Convergence (checked every ``check_every`` steps; all must hold): the chain is longer than
-  ``tau_factor`` (50) times the largest integrated autocorrelation time and every estimate
-  changed by less than 1% since the previous check (the emcee documentation's criterion);
-  rank-normalised split R-hat across walkers below ``rhat_max`` (1.01; a heuristic here, the
-  walkers being coupled); bulk and tail ESS at least ``min_ess`` (400) for every quantity
-  (Vehtari et al. 2021).  Burn-in is 2 tau_max and thinning tau_min / 2 (the emcee
-  documentation's rule).  A run stopped by ``max_steps`` is "not converged" wherever it is
-  reported.
+* Stop rule (checked every ``check_every`` steps; all must hold, see
+  :func:`check_convergence`): the chain after burn-in is longer than ``tau_factor`` (50)
+  times the largest integrated autocorrelation time estimated on it, and that estimate
+  differs from the one on the chain's first three quarters by less than its own estimation
+  noise allows (:func:`tau_bound`); rank-normalised split R-hat across four groups of
+  walkers below ``rhat_max`` (1.01; a heuristic here, the walkers being coupled); bulk ESS,
+  tail ESS and the ESS of the 95% interval's ends at least ``min_ess`` (400) for every
+  quantity (Vehtari et al. 2021), so that the median and the interval ends are known to
+  the Monte Carlo standard errors reported with them.  Burn-in is 2 tau_max and thinning
+  tau_min / 2 (the emcee documentation's rule).  A run stopped by ``max_steps`` is "not
+  converged" wherever it is reported.
+* Threads: the compiled simulation core releases the GIL, so each half-ensemble's rows are
+  shared out over up to :func:`sampler_threads` threads; every row is simulated alone, so
+  the samples do not depend on the thread count.
 """
 
 from __future__ import annotations
 
 import math
+import os
 import sys
 import time
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Callable
 
 import emcee
 import numpy as np
@@ -40,7 +49,8 @@ from graybox.estimate.fit import FitResult
 from graybox.estimate.problem import Problem
 from graybox.posterior.checks import lag_one, residual_checks
 from graybox.posterior.config import SamplerSettings, priors_from_spec
-from graybox.posterior.diagnostics import RHAT_NOTE, autocorr_time, chain_diagnostics
+from graybox.posterior.diagnostics import (CI95, DIAGNOSTIC_KEYS, RHAT_NOTE, autocorr_change_sd, autocorr_time,
+                                          chain_diagnostics, group_count, quantile_mcse)
 from graybox.posterior.likelihood import LogPosterior
 from graybox.posterior.noise import KIND_AR1, NoiseLayout, noise_layout
 from graybox.posterior.priors import Prior
@@ -176,16 +186,18 @@ def _values_text(post: LogPosterior, z: np.ndarray) -> str:
 
 @dataclass(frozen=True)
 class Check:
-    """One convergence check."""
+    """One convergence check (per-quantity arrays in the order of the sampled names)."""
 
     steps: int
-    tau: np.ndarray
-    tau_change: float  # largest relative change since the previous check (inf at the first)
+    tau: np.ndarray  # on the chain after burn-in
+    tau_change: np.ndarray  # relative difference from the estimate on its first three quarters
+    tau_tol: np.ndarray  # the bound each change had to stay below
     burn_in: int
     rhat: np.ndarray
     ess: np.ndarray
     ess_tail: np.ndarray
     ess_mean: np.ndarray
+    ess_ci95: np.ndarray
     long_enough: bool
     tau_stable: bool
     rhat_ok: bool
@@ -195,32 +207,56 @@ class Check:
     def converged(self) -> bool:
         return self.long_enough and self.tau_stable and self.rhat_ok and self.ess_ok
 
+    @property
+    def ess_min(self) -> np.ndarray:
+        """Per quantity, the smallest of the bulk, tail and interval-end ESS."""
+        return np.minimum(np.minimum(self.ess, self.ess_tail), self.ess_ci95)
+
     def failed(self, st: SamplerSettings) -> list[str]:
         out = []
         if not self.long_enough:
-            out.append(f"chain of {self.steps} steps is not longer than {st.tau_factor:g} x tau_max "
-                       f"({st.tau_factor * float(np.max(self.tau)):.0f})")
+            out.append(f"chain of {self.steps - self.burn_in} steps after burn-in is not longer than "
+                       f"{st.tau_factor:g} x tau_max ({st.tau_factor * float(np.max(self.tau)):.0f})")
         if not self.tau_stable:
-            out.append(f"tau changed by {100 * self.tau_change:.1f}% since the last check (bound "
-                       f"{100 * st.tau_rtol:g}%)")
+            k = _worst(self.tau_change / self.tau_tol)
+            if math.isfinite(float(self.tau_change[k])):
+                out.append(f"tau differs by {100 * float(self.tau_change[k]):.1f}% from its estimate on the first "
+                           f"three quarters of the chain (bound {100 * float(self.tau_tol[k]):.1f}%, set by its "
+                           f"estimation noise)")
+            else:
+                out.append("tau could not be estimated on the chain's first three quarters")
         if not self.rhat_ok:
             value = _extreme(self.rhat, max)
             out.append(f"R-hat {value:.4f} >= {st.rhat_max:g}" if value is not None else "R-hat not computed")
         if not self.ess_ok:
-            value = _extreme(np.minimum(self.ess, self.ess_tail), min)
+            value = _extreme(self.ess_min, min)
             out.append(f"ESS {value:.0f} < {st.min_ess:g}" if value is not None else "ESS not computed")
         return out
 
     def to_dict(self) -> dict:
-        return {"steps": self.steps, "tau_max": float(np.max(self.tau)), "tau_change": _num(self.tau_change),
-                "rhat_max": _extreme(self.rhat, max), "ess_min": _extreme(np.minimum(self.ess, self.ess_tail), min),
+        k = _worst(self.tau_change / self.tau_tol)
+        return {"steps": self.steps, "burn_in": self.burn_in, "tau_max": float(np.max(self.tau)),
+                "tau_change": _num(self.tau_change[k]), "tau_bound": _num(self.tau_tol[k]),
+                "rhat_max": _extreme(self.rhat, max), "ess_min": _extreme(self.ess_min, min),
                 "converged": self.converged}
+
+
+def _worst(ratio: np.ndarray) -> int:
+    """Index of the largest ratio (NaN counts as the largest)."""
+    r = np.where(np.isnan(ratio), np.inf, ratio)
+    return int(np.argmax(r))
 
 
 def _extreme(values: np.ndarray, pick) -> float | None:
     """max or min over the finite entries (None when there is none)."""
     finite = [float(v) for v in np.ravel(values) if np.isfinite(v)]
     return pick(finite) if finite else None
+
+
+def _mcse_text(v: float | None) -> str:
+    """A Monte Carlo standard error in the summary table: two significant digits, "n/a" when
+    not computed."""
+    return "n/a" if v is None else f"{v:.2g}"
 
 
 def _num(v) -> float | None:
@@ -235,47 +271,98 @@ def burn_and_thin(tau: np.ndarray, steps: int) -> tuple[int, int]:
     return burn, thin
 
 
-def check_convergence(chain: np.ndarray, tau_prev: np.ndarray | None, st: SamplerSettings,
+STABILITY_PART = 0.75  # tau is compared with its estimate on this leading share of the kept chain
+
+
+def tau_bound(tau: np.ndarray, n_part: int, n_now: int, n_walkers: int, floor: float) -> np.ndarray:
+    """The bound on the relative difference between tau estimated on ``n_now`` kept steps and
+    on their first ``n_part``: max(floor, 2 sd), sd the standard deviation of that difference
+    from the estimator's own noise (:func:`graybox.posterior.diagnostics.autocorr_change_sd`).
+
+    A fixed tight bound (1%) asks more of tau than its estimate can give: with 32 walkers,
+    tau = 8 and 400 kept steps, the difference from the first 300 steps' estimate has a
+    standard deviation of about 6.5%, so a 1% bound holds only by chance and the chain runs on
+    long after every reported number is settled.  Two standard deviations flag a drift
+    beyond the estimator's noise (a chain still finding its way, whose tau keeps growing)
+    while an honest estimate passes at least about 19 times in 20 (the formula overstates
+    emcee's estimator's noise, see the diagnostics module); the floor (5% by default) keeps
+    a long chain from being held for differences that cannot matter (a 5% error in tau
+    moves the 50-tau length by 2.5 tau)."""
+    return np.maximum(floor, 2.0 * autocorr_change_sd(tau, n_part, n_now, n_walkers))
+
+
+def check_convergence(chain: np.ndarray, prev: Check | None, st: SamplerSettings,
                       always_diagnose: bool = False) -> Check:
-    """The convergence criteria on ``chain`` (n_steps, n_walkers, n_dim), natural units.
+    """The stop rule on ``chain`` (n_steps, n_walkers, n_dim), natural units.  ``prev`` (the
+    previous check) is part of the signature of a criterion (``run_posterior`` passes it)
+    but not used: stability is judged within the chain itself, so the first check can
+    already stop.  Every reported quantity must be known to its stated precision:
+
+    * burn-in 2 tau_max (tau on the whole chain, which the initial ball's spreading can only
+      lengthen); tau then re-estimated on the kept chain (after burn-in);
+    * the kept chain is longer than ``tau_factor`` (50) x tau_max;
+    * tau is stable: for every quantity, its relative difference from the estimate on the
+      kept chain's first three quarters is below :func:`tau_bound` (its estimation noise,
+      floor ``tau_rtol``);
+    * rank-normalised split R-hat across four walker groups below ``rhat_max`` (1.01;
+      :func:`graybox.posterior.diagnostics.rhat_grouped`);
+    * bulk ESS, tail ESS (5%/95%) and the ESS of the reported interval's ends (2.5%/97.5%)
+      at least ``min_ess`` (400) for every quantity (Vehtari et al. 2021): the Monte Carlo
+      error of the median is then about 1/16 and of each interval end about 1/7 of a
+      posterior standard deviation (Gaussian case), and both are reported.
 
     R-hat and ESS (the costlier part) are computed only once the autocorrelation criteria
     hold, or when ``always_diagnose``; otherwise they are NaN and count as not met."""
-    steps = chain.shape[0]
-    tau = autocorr_time(chain)
-    change = math.inf if tau_prev is None else float(np.max(np.abs(tau_prev - tau) / tau))
-    burn, _ = burn_and_thin(tau, steps)
-    long_enough = bool(steps > st.tau_factor * float(np.max(tau)))
-    stable = bool(change < st.tau_rtol)
-    n_dim = chain.shape[2]
+    steps, n_walkers, n_dim = chain.shape
+    burn, _ = burn_and_thin(autocorr_time(chain), steps)
+    kept = chain[burn:]
+    n_now = steps - burn
+    n_part = int(STABILITY_PART * n_now)
+    tau = autocorr_time(kept)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        if n_part >= 4:
+            change = np.abs(tau - autocorr_time(kept[:n_part])) / tau
+        else:
+            change = np.full(n_dim, np.inf)
+        change = np.where(np.isfinite(change), change, np.inf)
+    bound = tau_bound(tau, n_part, n_now, n_walkers, st.tau_rtol)
+    long_enough = bool(n_now > st.tau_factor * float(np.max(tau)))
+    stable = bool(np.all(change < bound))
     if (long_enough and stable) or always_diagnose:
-        diag = chain_diagnostics(chain[burn:])
+        diag = chain_diagnostics(kept)
     else:
-        diag = {k: np.full(n_dim, np.nan) for k in ("rhat", "ess", "ess_tail", "ess_mean")}
+        diag = {k: np.full(n_dim, np.nan) for k in DIAGNOSTIC_KEYS}
     with np.errstate(invalid="ignore"):
         rhat_ok = bool(np.all(diag["rhat"] < st.rhat_max))
-        ess_ok = bool(np.all(np.minimum(diag["ess"], diag["ess_tail"]) >= st.min_ess))
-    return Check(steps, tau, change, burn, diag["rhat"], diag["ess"], diag["ess_tail"], diag["ess_mean"],
-                 long_enough, stable, rhat_ok, ess_ok)
+        ess_ok = bool(np.all(np.minimum(np.minimum(diag["ess"], diag["ess_tail"]), diag["ess_ci95"]) >= st.min_ess))
+    return Check(steps, tau, change, bound, burn, diag["rhat"], diag["ess"], diag["ess_tail"], diag["ess_mean"],
+                 diag["ess_ci95"], long_enough, stable, rhat_ok, ess_ok)
 
 
 # ---------------------------------------------------------------------------------------------
 # result
 
 
-def quantity_stats(x: np.ndarray, rhat: float, ess: float, ess_tail: float, ess_mean: float, converged: bool) -> dict:
-    """Summary of one quantity's post-burn-in draws."""
-    lo, med, hi = np.quantile(x, [0.025, 0.5, 0.975])
-    sd = float(np.std(x, ddof=1))
+def quantity_stats(x: np.ndarray, check: Check, d: int, converged: bool) -> dict:
+    """Summary of one quantity's post-burn-in draws ``x`` (n_walkers, n_draws), with the
+    Monte Carlo standard errors of the mean, the median and the interval ends (the last two
+    by :func:`graybox.posterior.diagnostics.quantile_mcse`, the walkers as chains)."""
+    flat = x.ravel()
+    lo, med, hi = np.quantile(flat, [CI95[0], 0.5, CI95[1]])
+    sd = float(np.std(flat, ddof=1))
+    ess_mean = float(check.ess_mean[d])
     return {
         "median": float(med),
-        "mean": float(np.mean(x)),
+        "mean": float(np.mean(flat)),
         "sd": sd,
         "ci95": [float(lo), float(hi)],
         "mcse_mean": float(sd / math.sqrt(ess_mean)) if ess_mean > 0 else None,
-        "ess": _num(ess),
-        "ess_tail": _num(ess_tail),
-        "rhat": _num(rhat),
+        "mcse_median": _num(quantile_mcse(x, 0.5)),
+        "mcse_ci95": [_num(quantile_mcse(x, CI95[0])), _num(quantile_mcse(x, CI95[1]))],
+        "ess": _num(check.ess[d]),
+        "ess_tail": _num(check.ess_tail[d]),
+        "ess_ci95": _num(check.ess_ci95[d]),
+        "rhat": _num(check.rhat[d]),
         "converged": converged,
     }
 
@@ -394,7 +481,10 @@ class PosteriorResult:
             "reason": self.reason,
             "criteria": {"tau_factor": self.settings.tau_factor, "tau_rtol": self.settings.tau_rtol,
                          "rhat_max": self.settings.rhat_max, "min_ess": self.settings.min_ess,
-                         "rhat_note": RHAT_NOTE},
+                         "rhat_note": RHAT_NOTE, "rhat_walker_groups": group_count(self.n_walkers),
+                         "tau_compared_with": f"its estimate on the first {STABILITY_PART:.0%} of the kept chain, "
+                                              "bound max(tau_rtol, 2 sd of that difference)",
+                         "ess_of": "bulk, tail (5%, 95%) and interval ends (2.5%, 97.5%)"},
             "checks": self.history,
             "start": self.start_method,
             "seed": self.seed,
@@ -416,13 +506,19 @@ class PosteriorResult:
         if not self.converged:
             lines.append("  these numbers are NOT final: the chain did not meet the convergence criteria")
         width = max(len(n) for n in self.names)
-        lines.append(f"  {'':{width}}  {'median':>12} {'95% credible interval':>29} {'ESS':>7} {'R-hat':>7}")
+        lines.append(f"  {'':{width}}  {'median':>12} {'(MCSE)':>9} {'95% credible interval':>29} "
+                     f"{'(MCSE of the ends)':>20} {'ESS':>7} {'R-hat':>7}")
         for n in self.names:
             s = self.stats[n]
             lo, hi = s["ci95"]
+            m_lo, m_hi = s["mcse_ci95"]
             ess = s["ess"] if s["ess"] is not None else float("nan")
             rhat = s["rhat"] if s["rhat"] is not None else float("nan")
-            lines.append(f"  {n:{width}}  {s['median']:12.6g} [{lo:13.6g}, {hi:13.6g}] {ess:7.0f} {rhat:7.4f}")
+            lines.append(f"  {n:{width}}  {s['median']:12.6g} {_mcse_text(s['mcse_median']):>9} "
+                         f"[{lo:13.6g}, {hi:13.6g}] {'(' + _mcse_text(m_lo) + ', ' + _mcse_text(m_hi) + ')':>20} "
+                         f"{ess:7.0f} {rhat:7.4f}")
+        lines.append("  MCSE: Monte Carlo standard error of the median and of each interval end (Vehtari et al. 2021, "
+                     "section 4.4), from the chain's effective sample size")
         lines.append("  priors:")
         for p in self.priors:
             lines.append(f"    {p.name}: {p.describe()}")
@@ -491,11 +587,58 @@ def _progress_bar(st: SamplerSettings):
     return tqdm(total=st.max_steps, desc="sampling", unit="step", file=sys.stderr, leave=False)
 
 
+def sampler_threads(engine_name: str, environ=os.environ) -> int:
+    """Threads for one log-posterior batch: with the compiled core (which releases the GIL)
+    the cores this process may run on, at most ``NUMBA_NUM_THREADS`` when that is set
+    (fleet jobs and the test suite set it to 1: they parallelise over processes); one for
+    the numpy reference path."""
+    if engine_name != "compiled":
+        return 1
+    try:
+        cores = len(os.sched_getaffinity(0))
+    except AttributeError:  # not on every platform
+        cores = os.cpu_count() or 1
+    limit = environ.get("NUMBA_NUM_THREADS", "").strip()
+    if limit.isdigit() and int(limit) > 0:
+        cores = min(cores, int(limit))
+    return max(1, cores)
+
+
+class BatchEvaluator:
+    """The log-posterior of a batch of rows (emcee's ``vectorize=True`` call), the rows
+    shared out in contiguous blocks over ``n_threads`` threads.  Each row is simulated on
+    its own (its own adaptive step), so the values do not depend on the blocks.  Counts the
+    rows inside the prior's support (the simulated parameter sets) itself."""
+
+    def __init__(self, post: LogPosterior, n_threads: int):
+        self.post = post
+        self.n_threads = max(1, int(n_threads))
+        self.n_sets = 0
+        self._pool = ThreadPoolExecutor(self.n_threads, thread_name_prefix="graybox-lp") if self.n_threads > 1 \
+            else None
+
+    def __call__(self, Z: np.ndarray) -> np.ndarray:
+        Z = np.atleast_2d(np.asarray(Z, float))
+        self.n_sets += int(np.count_nonzero(np.isfinite(self.post.log_prior(Z))))
+        if self._pool is None or Z.shape[0] < 2:
+            return self.post(Z)
+        blocks = np.array_split(Z, min(self.n_threads, Z.shape[0]))
+        return np.concatenate(list(self._pool.map(self.post, blocks)))
+
+    def close(self) -> None:
+        if self._pool is not None:
+            self._pool.shutdown(wait=True)
+
+
 def run_posterior(problem: Problem, fit_result: FitResult, noise: dict, settings: SamplerSettings, seed: int, *,
-                  priors: list[Prior] | None = None, file: Path | None = None) -> PosteriorResult:
+                  priors: list[Prior] | None = None, file: Path | None = None,
+                  _criterion: Callable | None = None, _threads: int | None = None) -> PosteriorResult:
     """Sample the posterior; ``noise``: output -> NoiseSpec (``study.noise``); ``seed``: the
     study's seed, used unless ``settings.seed`` is given; ``file``: the study file, for error
-    locations."""
+    locations.  Private, for benchmarks/bench_stop_rule.py and the tests: ``_criterion``, a
+    replacement for :func:`check_convergence` with its signature; ``_threads``, the thread
+    count instead of :func:`sampler_threads`."""
+    criterion = check_convergence if _criterion is None else _criterion
     t0 = time.perf_counter()
     st = settings
     used_seed = int(st.seed if st.seed is not None else seed)
@@ -508,13 +651,14 @@ def run_posterior(problem: Problem, fit_result: FitResult, noise: dict, settings
     rng = np.random.default_rng(np.random.SeedSequence([used_seed, SEED_STREAM]))
     start = start_distribution(post, fit_result)
     Z0, lp0 = initial_ensemble(post, start, n_walkers, rng)
-    sampler = emcee.EnsembleSampler(n_walkers, n_dim, post, vectorize=True, moves=emcee_moves(st.moves))
+    n_start_sets = post.n_sets  # the start's evaluations (single-threaded)
+    evaluate = BatchEvaluator(post, sampler_threads(problem.engine.name) if _threads is None else _threads)
+    sampler = emcee.EnsembleSampler(n_walkers, n_dim, evaluate, vectorize=True, moves=emcee_moves(st.moves))
     sampler.random_state = np.random.RandomState(int(rng.integers(0, 2**32 - 1))).get_state()
     state = emcee.State(Z0, log_prob=lp0)
     bar = _progress_bar(st)
     history: list[dict] = []
-    tau_prev = tau_before = None
-    check = None
+    check = before = None
     try:
         while sampler.iteration < st.max_steps:
             n = min(st.check_every, st.max_steps - sampler.iteration)
@@ -523,9 +667,7 @@ def run_posterior(problem: Problem, fit_result: FitResult, noise: dict, settings
                     bar.update(1)
             raw = sampler.get_chain()
             chain = post.natural(raw.reshape(-1, n_dim)).reshape(raw.shape)
-            tau_before = tau_prev
-            check = check_convergence(chain, tau_prev, st)
-            tau_prev = check.tau
+            before, check = check, criterion(chain, check, st)
             history.append(check.to_dict())
             if check.converged:
                 break
@@ -533,27 +675,27 @@ def run_posterior(problem: Problem, fit_result: FitResult, noise: dict, settings
         raise SampleError(f"the sampler could not start: {exc}",
                           hint="the starting walkers are degenerate; check for parameters the data do not determine")
     finally:
+        evaluate.close()
         if bar is not None:
             bar.close()
     raw = sampler.get_chain()  # (steps, walkers, dim), sampled space
     chain = post.natural(raw.reshape(-1, n_dim)).reshape(raw.shape).transpose(1, 0, 2)
     if not check.converged:  # the summaries still need R-hat and ESS
-        check = check_convergence(chain.transpose(1, 0, 2), tau_before, st, always_diagnose=True)
+        check = criterion(chain.transpose(1, 0, 2), before, st, always_diagnose=True)
     log_prob = sampler.get_log_prob().T
     converged = check.converged
     if converged:
-        reason = f"converged after {check.steps} steps: chain > {st.tau_factor:g} x tau_max, tau stable within " \
-                 f"{100 * st.tau_rtol:g}%, R-hat < {st.rhat_max:g}, ESS >= {st.min_ess:g}"
+        k = _worst(check.tau_change / check.tau_tol)
+        reason = (f"converged after {check.steps} steps: chain after burn-in > {st.tau_factor:g} x tau_max, tau "
+                  f"stable within its noise ({100 * float(check.tau_change[k]):.1f}% from its estimate on the "
+                  f"first three quarters < {100 * float(check.tau_tol[k]):.1f}%), R-hat < {st.rhat_max:g}, bulk, "
+                  f"tail and interval-end ESS >= {st.min_ess:g}")
     else:
         reason = f"not converged: stopped at the step limit of {st.max_steps} steps; " + "; ".join(check.failed(st))
     burn = check.burn_in
     _, thin = burn_and_thin(check.tau, chain.shape[1])
-    stats = {}
-    post_burn = chain[:, burn:, :].reshape(-1, n_dim)
-    for d, name in enumerate(post.names):
-        stats[name] = quantity_stats(post_burn[:, d], check.rhat[d], check.ess[d], check.ess_tail[d],
-                                     check.ess_mean[d], converged)
-    med = np.median(post_burn, axis=0)
+    stats = {name: quantity_stats(chain[:, burn:, d], check, d, converged) for d, name in enumerate(post.names)}
+    med = np.median(chain[:, burn:, :].reshape(-1, n_dim), axis=0)
     natural_noise = {}
     for m in layout.models:
         s, ph, nu = layout.values(post.sampled(med[None, :])[:, post.n_free:], m.output)
@@ -568,7 +710,7 @@ def run_posterior(problem: Problem, fit_result: FitResult, noise: dict, settings
         tau=check.tau, acceptance=np.asarray(sampler.acceptance_fraction, float), converged=converged, reason=reason,
         check=check, history=history, priors=priors, layout=layout, settings=st, seed=used_seed,
         start_method=start.method, fit_x=np.asarray(fit_result.x, float), warnings=warnings,
-        n_evaluations=post.n_sets, wall_s=time.perf_counter() - t0, engine=problem.engine.name, stats=stats,
+        n_evaluations=n_start_sets + evaluate.n_sets, wall_s=time.perf_counter() - t0, engine=problem.engine.name, stats=stats,
     )
 
 
