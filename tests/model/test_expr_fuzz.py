@@ -78,7 +78,7 @@ def _model(expr: str, where: str):
 
 def _scalar_functions(spec):
     """The compiled core's scalar dialect, run as Python on numpy float64 scalars."""
-    from graybox.simulate.compiled import KernelEmitter
+    from graybox.simulate.kernel_emit import KernelEmitter
 
     env, chunks, names = symbol_env(spec), [], []
     for d in tensor_defs(spec):

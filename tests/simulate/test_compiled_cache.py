@@ -18,7 +18,7 @@ import numpy as np
 import pytest
 
 from graybox.simulate.cache import module_key, write_once
-from graybox.simulate.compiled import module_source
+from graybox.simulate.kernel_source import module_source
 
 from . import conftest as M
 
