@@ -505,18 +505,28 @@ def _tag_report(td: TagData, spec: DataSpec, start: int | None, end: int | None)
         held_repeats_in_stuck=s["repeats_in_stuck"], logging=td.spec.logging)
 
 
+MAX_WARNED = 20  # gaps (and stuck runs) of one tag printed one by one; the rest counted in one line
+
+
 def _tag_warnings(td: TagData, spec: DataSpec) -> list[str]:
     """What a reader must be told about a tag: every gap over its limit and every stuck run."""
-    out = [gap_warning(g, td.spec, td.rule, iso_z) for g in td.gaps]
+    out = [gap_warning(g, td.spec, td.rule, iso_z) for g in td.gaps[:MAX_WARNED]]
     who = f"{td.spec.role} {td.spec.symbol} (tag '{td.spec.tag}')"
+    if len(td.gaps) > MAX_WARNED:
+        rest = td.gaps[MAX_WARNED:]
+        out.append(f"{who}: {len(rest)} more gaps over {duration_text(td.rule.limit_s)} after these, the longest "
+                   f"{duration_text(max(g.duration_s for g in rest))} (the data report lists every one: gap_list)")
     limit = stuck_limit(td.spec.role, td.spec.stuck_after, spec.stuck_after)
-    for a, b, n in td.stuck_runs:
+    for a, b, n in td.stuck_runs[:MAX_WARNED]:
         what = "masked" if spec.stuck_action == "mask" else "flagged, not masked (stuck_action = \"mask\" masks it)"
         held = (" (logged by exception: a frozen sensor, or a value that held within the deadband)"
                 if td.spec.logging == "exception" else "")
         out.append(f"{who}: flat within half its deadband ({td.spec.deadband:g}) for {duration_text((b - a) / 1e9)}, "
                    f"{iso_z(a)} .. {iso_z(b)}, {n} rows, over stuck_after {duration_text(limit)}: a stuck "
                    f"sensor{held}; {what}")
+    if len(td.stuck_runs) > MAX_WARNED:
+        out.append(f"{who}: {len(td.stuck_runs) - MAX_WARNED} more stuck runs after these (the data report lists "
+                   "every one: stuck_runs)")
     return out
 
 

@@ -68,10 +68,10 @@ def gap_rule(tag: TagSpec, spec: DataSpec, median_s: float | None) -> GapRule:
     if tag.max_gap is not None:
         if tag.max_gap == GAP_AUTO:
             return _auto(tag, median_s, "the tag's max_gap = ")
-        return GapRule(float(tag.max_gap), "off (the tag's max_gap)" if math.isinf(tag.max_gap)
+        return GapRule(float(tag.max_gap), "max_gap = \"off\" on the tag" if math.isinf(tag.max_gap)
                        else "the tag's max_gap")
     if spec.max_gap != GAP_AUTO and math.isinf(spec.max_gap):
-        return GapRule(math.inf, "off (the experiment's max_gap)")
+        return GapRule(math.inf, "max_gap = \"off\" for the experiment")
     if tag.logging == "exception":
         return _auto(tag, median_s, "")
     if spec.max_gap == GAP_AUTO:

@@ -162,15 +162,18 @@ def stuck(t_ns: np.ndarray, values: np.ndarray, usable: np.ndarray, deadband: fl
 
 def stuck_runs(t_ns: np.ndarray, values: np.ndarray, usable: np.ndarray, deadband: float, min_duration_s: float,
                min_samples: int = 3) -> list[tuple[int, int]]:
-    """(first, last) positions of each run of consecutive usable samples that all lie within half the ``deadband`` of the
-    run's first sample (exactly equal for a zero deadband), at least ``min_samples`` long and
-    lasting at least ``min_duration_s``.
+    """(first, last) positions of each run of consecutive usable samples that all lie within
+    half the ``deadband`` of the run's first sample (exactly equal for a zero deadband), at
+    least ``min_samples`` long and lasting at least ``min_duration_s`` (none when it is inf).
 
     A live sensor logged periodically moves from sample to sample (noise); a frozen one
-    repeats itself.  A report-by-exception export stores a sample only when the value moved
-    by the deadband, so consecutive samples differ by about the deadband and never form such
-    a run, however long the plant sat steady (half the deadband leaves room for stored
-    values rounded at the deadband's edge)."""
+    repeats itself.  A raw report-by-exception export stores a sample only when the value
+    moved by the deadband, so consecutive samples differ by about the deadband and never form
+    such a run, however long the plant sat steady (half the deadband leaves room for stored
+    values rounded at the deadband's edge).  An exception export written out on a grid or
+    with a heartbeat repeats the held value: there a frozen sensor and a value that held
+    within the deadband look alike, and a run this long is reported either way (flagged,
+    not masked, unless stuck_action = "mask")."""
     out: list[tuple[int, int]] = []
     if not np.isfinite(min_duration_s):
         return out

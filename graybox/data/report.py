@@ -146,8 +146,9 @@ class DataReport:
             if t.gaps:
                 details.append(f"{t.gaps} gap{'s' if t.gaps != 1 else ''} over {duration_text(t.gap_limit_s)} "
                                f"(longest {duration_text(t.longest_gap_s)})")
-            details.append(f"gap limit {duration_text(t.gap_limit_s) if t.gap_limit_s else 'none'} ({t.gap_rule})"
-                           if t.gap_rule else "")
+            if t.gap_rule:
+                details.append(f"gap limit {duration_text(t.gap_limit_s)} ({t.gap_rule})" if t.gap_limit_s
+                               else f"no gap limit ({t.gap_rule})")
             details.append(f"stuck after {duration_text(t.stuck_after_s)}" if t.stuck_after_s else "stuck: not judged")
             lines.append(f"  {t.symbol} ({t.tag}): " + "; ".join(d for d in details if d))
         lines.append("")

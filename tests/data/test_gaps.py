@@ -242,3 +242,25 @@ def test_check_and_fit_warn_alike_and_the_fit_recovers_the_truth(export):
     p = doc["parameters"]
     assert p["k"]["estimate"] == pytest.approx(K_M2_S, rel=0.01)
     assert p["A"]["estimate"] == pytest.approx(AREA_M2, rel=0.03)
+
+
+def test_many_gaps_all_in_the_report_twenty_printed(tmp_path):
+    """A 20 min outage every 2 h of a sampled 1-min input, 30 times (the last one ends the
+    file): 29 gaps of 21 min between rows, all in gap_list, 30 segments; the first 20 warned
+    one by one, the other 9 counted in one line (the scenario's counts)."""
+    from graybox.data.assemble import MAX_WARNED
+
+    rows = []
+    for i in range(30 * 120):
+        if i % 120 >= 100:  # 20 min without a row every 2 h
+            continue
+        rows.append(f"{(T0 + pd.Timedelta(minutes=i)).isoformat()},{20 + (i % 13) / 10},{1 + (i % 7)},1")
+    write(tmp_path, "m.csv", "time,TI_101,QI_7,FI_3\n" + "\n".join(rows) + "\n")
+    rec, rep = load(tmp_path, {"files": ["m.csv"], "time_column": "time",
+                               "tags": {"T": {"tag": "TI_101", "units": "K"}, "Q": "QI_7", "F": "FI_3"}})
+    q = rep.tag("Q")
+    assert q.gaps == 29 and len(q.gap_list) == 29 and len(rec.segments) == 30  # the last outage ends the file
+    assert all(g["duration_s"] == 21 * 60.0 for g in q.gap_list)
+    mine = [w for w in rep.warnings if "QI_7" in w]
+    assert MAX_WARNED == 20 and len(mine) == MAX_WARNED + 1
+    assert "9 more gaps over 15 min" in mine[-1]
