@@ -303,6 +303,24 @@ def _thin_repeats(t: np.ndarray, v: np.ndarray, masked: np.ndarray, limit_s: flo
     return np.flatnonzero(~rep), np.cumsum(~rep) - 1
 
 
+def _non_numbers(v: np.ndarray, any_nan: bool) -> tuple[np.ndarray | None, np.ndarray | None]:
+    """Where rows with a value hold NaN (only when the reader saw any) and where they are
+    infinite; None for either when there are none."""
+    infinite = np.isinf(v)
+    return (np.isnan(v) if any_nan else None), (infinite if infinite.any() else None)
+
+
+def _stuck_rows(t: np.ndarray, v: np.ndarray, usable: np.ndarray, tg: TagSpec, spec: DataSpec
+                ) -> tuple[np.ndarray, tuple[tuple[int, int, int], ...]]:
+    """The rows in stuck runs (the tag's stuck rule, see quality.stuck_limit) and each run's
+    (first ns, last ns, rows)."""
+    runs = stuck_runs(t, v, usable, tg.deadband, stuck_limit(tg.role, tg.stuck_after, spec.stuck_after))
+    st = np.zeros(t.size, bool)
+    for a, b in runs:
+        st[a:b + 1] = usable[a:b + 1]
+    return st, tuple((int(t[a]), int(t[b]), int(st[a:b + 1].sum())) for a, b in runs)
+
+
 def process_tag(tg: TagSpec, chunks: list[Chunk], spec: DataSpec, conv: Conversion,
                 quality_texts: list[str] = (), start: int | None = None) -> TagData:
     """One tag's samples after judgement; ``start``: the experiment's start (ns), samples
@@ -350,20 +368,12 @@ def process_tag(tg: TagSpec, chunks: list[Chunk], spec: DataSpec, conv: Conversi
     rule = gap_rule(tg, spec, median_s)
     bad_range = out_of_range(v, tg.valid)
     bq = bad_quality(q, list(quality_texts), spec.good_quality)
-    pre_bad = bad_range | bq if bq is not None else bad_range
-    not_number = np.isnan(v) if nan is not None else None  # rows with a value: a NaN here is a value
-    infinite = np.isinf(v)
-    if not infinite.any():
-        infinite = None
-    for m in (not_number, infinite):
+    not_number, infinite = _non_numbers(v, nan is not None)
+    pre_bad = bad_range
+    for m in (bq, not_number, infinite):
         if m is not None:
             pre_bad = pre_bad | m
-    usable = ~pre_bad
-    runs = stuck_runs(t, v, usable, tg.deadband, stuck_limit(tg.role, tg.stuck_after, spec.stuck_after))
-    st = np.zeros(t.size, bool)
-    for a, b in runs:
-        st[a:b + 1] = usable[a:b + 1]
-    runs_ns = tuple((int(t[a]), int(t[b]), int(st[a:b + 1].sum())) for a, b in runs)
+    st, runs_ns = _stuck_rows(t, v, ~pre_bad, tg, spec)
     mask_stuck = spec.stuck_action == "mask"
     n_stuck = int(st.sum())  # rows as logged, held repeats among them included
     repeats = repeats_in_stuck = 0
