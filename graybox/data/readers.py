@@ -110,15 +110,17 @@ def read_table(path: Path, opts: ReadOptions, time_column: str | None, wanted: d
     files may feed one experiment).  ``text_time``: keep the time column as text.
     ``after_parse()`` is called once the file's text has been parsed into columns."""
     fmt = file_format(path, opts)
+    nan_cells: dict[str, np.ndarray] = {}  # stored NaNs apart from empty cells (Parquet floats only)
     if fmt == "csv":
         frame, word, numbers, header = _csv_frame(path, opts, time_column, wanted, text_time)
     elif fmt == "parquet":
-        frame, word, numbers, header = _parquet_frame(path, opts, time_column, wanted)
+        frame, word, numbers, header, nan_cells = _parquet_frame(path, opts, time_column, wanted)
     else:
         frame, word, numbers, header = _excel_frame(path, opts, time_column, wanted)
     if after_parse is not None:
         after_parse()
-    return _to_raw(path, frame, word, numbers, opts, time_column, wanted, header, vocab or QualityVocab())
+    return _to_raw(path, frame, word, numbers, opts, time_column, wanted, header, vocab or QualityVocab(),
+                   nan_cells)
 
 
 # -- the three storage formats ---------------------------------------------------------------
@@ -206,8 +208,7 @@ def _parquet_frame(path: Path, opts: ReadOptions, time_column, wanted):
         raise
     except Exception as exc:  # noqa: BLE001 - pyarrow raises ArrowInvalid, OSError, ...
         raise DataError(f"the file cannot be read as Parquet: {exc}", where=str(path)) from None
-    frame.attrs["nan_cells"] = nan_cells
-    return frame, "row", np.arange(len(frame), dtype=np.int64) + 1, header
+    return frame, "row", np.arange(len(frame), dtype=np.int64) + 1, header, nan_cells
 
 
 def _stored_nans(table) -> dict[str, np.ndarray]:
@@ -321,8 +322,9 @@ class QualityVocab:
         return table[codes]  # code -1 (missing) maps to the blank flag
 
 
-def _drop_empty_rows(frame: pd.DataFrame, numbers: np.ndarray):
-    nan_cells = frame.attrs.get("nan_cells") or {}
+def _drop_empty_rows(frame: pd.DataFrame, numbers: np.ndarray, nan_cells: dict[str, np.ndarray]):
+    """The rows with any cell holding something (a stored NaN is a value), their numbers,
+    and the NaN masks cut to them."""
     empty = np.ones(len(frame), bool)
     for name in frame.columns:  # column by column: most columns of most files have no blank cell
         col_empty = frame[name].isna().to_numpy()
@@ -409,8 +411,8 @@ def _periodic(codes: np.ndarray, n_names: int) -> list[slice] | None:
 
 def _to_raw(path: Path, frame: pd.DataFrame, word: str, numbers: np.ndarray, opts: ReadOptions,
             time_column: str | None, wanted: dict[str, str | None], header: list[str],
-            vocab: QualityVocab) -> RawTable:
-    frame, numbers, nan_cells = _drop_empty_rows(frame, numbers)
+            vocab: QualityVocab, nan_cells: dict[str, np.ndarray] | None = None) -> RawTable:
+    frame, numbers, nan_cells = _drop_empty_rows(frame, numbers, nan_cells or {})
     if len(frame) == 0:
         raise DataError("the file has a header but no data rows", where=str(path), hint="export the data again")
 
