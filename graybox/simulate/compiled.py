@@ -400,23 +400,4 @@ def compile_model(spec: ModelSpec, *, fast_path: bool = True) -> CompiledModel:
     return _compile_cached(spec, bool(fast_path))
 
 
-def simulate_auto(spec: ModelSpec, timeline: Timeline, theta, **kw) -> SimResult:
-    """Simulate with the compiled core when available, else with the numpy reference (a
-    Python right-hand side: with central-difference sensitivities, and a note in
-    ``messages``).  Keywords: ``x0_est``, ``sens``, ``tol``."""
-    if compiled_available(spec):
-        return compile_model(spec).simulate(timeline, theta, **kw)
-    from graybox.simulate import finite_difference_sensitivities
-    from graybox.simulate.reference import simulate as simulate_reference
-
-    funcs = generate(spec)
-    tol = kw.get("tol", Tolerances())
-    if kw.get("sens") and spec.python_rhs is not None:
-        res = finite_difference_sensitivities(funcs, timeline, theta, kw.get("x0_est"), tol)
-    else:
-        res = simulate_reference(funcs, timeline, theta, **kw)
-    res.messages.append(PYTHON_RHS_NOTE if spec.python_rhs is not None else "compiled core unavailable: reference path used")
-    return res
-
-
-__all__ = ["CompiledModel", "compile_model", "compiled_available", "simulate_auto", "timeline_tables"]
+__all__ = ["CompiledModel", "compile_model", "compiled_available", "timeline_tables"]

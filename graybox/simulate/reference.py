@@ -185,3 +185,50 @@ def _integrate_segment(b: Batch, funcs, seg, x, S, ok, method, tol: Tolerances, 
         if k + 1 in knot_obs:
             _observe(b, funcs, seg, k + 1, x, S, outputs, sens_out, knot_obs)
     return ok, n_steps
+
+
+def finite_difference_sensitivities(funcs, timeline: Timeline, theta, x0_est, tol: Tolerances) -> SimResult:
+    """Sensitivities of a Python right-hand side: central differences, every perturbed set in
+    the same batch as the nominal one, so they share one step sequence (differences of
+    smooth functions, not of step-size decisions)."""
+    theta = np.atleast_2d(np.asarray(theta, float))
+    n_sets, n_p = theta.shape
+    n_seg, n_est = len(timeline.segments), len(timeline.estimated_states)
+    x0 = None if x0_est is None else np.asarray(x0_est, float).reshape(n_sets, n_seg, n_est)
+    n_c = n_columns(funcs, timeline)
+    out_sens = {o: np.full((n_sets, timeline.record.outputs[o].t.size, n_c), np.nan) for o in funcs.spec.output_names}
+    nominal = None
+    ok_all = np.ones(n_sets, bool)
+    for s in range(n_sets):
+        rows_t, rows_x, steps = [theta[s]], [None if x0 is None else x0[s]], []
+        for c in range(n_c):
+            if c < n_p:
+                h = 1e-6 * max(1.0, abs(theta[s, c]))
+                for sign in (1, -1):
+                    t_ = theta[s].copy()
+                    t_[c] += sign * h
+                    rows_t.append(t_)
+                    rows_x.append(None if x0 is None else x0[s])
+            else:
+                k = c - n_p
+                seg, e = divmod(k, n_est)
+                h = 1e-6 * max(1.0, abs(x0[s, seg, e]))
+                for sign in (1, -1):
+                    x_ = x0[s].copy()
+                    x_[seg, e] += sign * h
+                    rows_t.append(theta[s])
+                    rows_x.append(x_)
+            steps.append(h)
+        xb = None if x0 is None else np.stack(rows_x)
+        res = simulate(funcs, timeline, np.stack(rows_t), x0_est=xb, tol=tol)
+        if nominal is None:
+            nominal = SimResult({o: np.full((n_sets, v.shape[1]), np.nan) for o, v in res.outputs.items()},
+                                out_sens, np.ones(n_sets, bool), res.methods, 0, list(res.messages))
+        for o, v in res.outputs.items():
+            nominal.outputs[o][s] = v[0]
+            for c, h in enumerate(steps):
+                out_sens[o][s, :, c] = (v[1 + 2 * c] - v[2 + 2 * c]) / (2 * h)
+        ok_all[s] = bool(res.ok.all())
+        nominal.n_steps += res.n_steps
+    nominal.ok = ok_all
+    return nominal

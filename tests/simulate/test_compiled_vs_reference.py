@@ -16,7 +16,8 @@ import pytest
 
 from graybox.data.record import Record, Segment
 from graybox.simulate import Tolerances, generate, plan, simulate_reference
-from graybox.simulate.compiled import compile_model, compiled_available, simulate_auto
+from graybox.simulate.compiled import compile_model, compiled_available
+from graybox.simulate.engine import simulate_auto
 
 from . import conftest as M
 
