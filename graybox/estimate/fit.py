@@ -41,6 +41,7 @@ compared later.
 from __future__ import annotations
 
 import time
+import warnings as pywarnings
 from dataclasses import dataclass, field
 
 import lmfit
@@ -49,7 +50,8 @@ from scipy import stats
 
 from graybox.errors import FitError
 from graybox.estimate.noise_levels import (CONVERGED_STEP, REWEIGHT_SETTLED, ConcentratedLikelihood, gaussian_loglik,
-                                           ml_sigmas, needs_reweighting, sigma_groups, stationary_point)
+                                           ml_sigmas, needs_reweighting, rows_by_output, sigma_groups,
+                                           stationary_point)
 from graybox.estimate.point import EPS, NEGLIGIBLE_STEP, Point, evaluate, step_in_standard_errors
 from graybox.estimate.problem import Problem
 
@@ -216,8 +218,10 @@ def _least_squares(problem: Problem, x0: np.ndarray, sigmas: np.ndarray, st: Fit
         return np.where(np.isfinite(J), J, 0.0)
 
     mini = lmfit.Minimizer(resid, params, nan_policy="propagate", scale_covar=False)
-    out = mini.minimize(method="least_squares", Dfun=jac, xtol=st.xtol, ftol=st.ftol, gtol=st.gtol,
-                        max_nfev=st.max_nfev, x_scale="jac")
+    with pywarnings.catch_warnings():  # lmfit's own covariance (not used: see _result) warns where it is singular
+        pywarnings.simplefilter("ignore", RuntimeWarning)
+        out = mini.minimize(method="least_squares", Dfun=jac, xtol=st.xtol, ftol=st.ftol, gtol=st.gtol,
+                            max_nfev=st.max_nfev, x_scale="jac")
     x = _vector(problem, out.params)
     message = str(getattr(out, "message", "")) or "finished"
     status = int(getattr(out, "status", 0))
@@ -391,6 +395,8 @@ def check_influence(problem: Problem, x0: np.ndarray, sigmas: np.ndarray) -> Non
         message, hint = unused_message(value)
         raise FitError(message, hint=hint)
     J = problem.jacobian(x0, sigmas)
+    if not np.all(np.isfinite(J)):
+        raise nonfinite_derivatives(problem, x0, J, "at the initial guess")
     dead = [j for j in range(J.shape[1]) if np.all(J[:, j] == 0)]
     if dead:
         names = ", ".join(f"{problem.names[j]} = {x0[j]:.6g}" for j in dead)
@@ -398,6 +404,30 @@ def check_influence(problem: Problem, x0: np.ndarray, sigmas: np.ndarray) -> Non
                        "the fit could not move it, and its column would cost every other value its standard error",
                        hint="the data may not excite it (e.g. its input is zero throughout) or the guesses switch "
                             "it off (e.g. a product with a value guessed 0): change the guess, fix it, or remove it")
+
+
+def nonfinite_derivatives(problem: Problem, x: np.ndarray, J: np.ndarray, at: str) -> FitError:
+    """The user error for a Jacobian with inf or NaN entries where the residuals are finite:
+    an equation overflows, or meets inf/inf, 0/0 or inf - inf, in its derivatives there.  The
+    optimiser cannot see past such a point, so a fit ending there would be a wrong answer
+    labelled converged.  Names the free values, the outputs and the equations involved."""
+    from graybox.model.expr import symbols
+
+    bad_cols = [j for j in range(J.shape[1]) if not np.all(np.isfinite(J[:, j]))]
+    values = ", ".join(f"{problem.names[j]} = {x[j]:.6g}" for j in bad_cols)
+    rows = rows_by_output(problem)
+    bad_rows = ~np.all(np.isfinite(J), axis=1)
+    outs = [o for k, o in enumerate(problem.spec.output_names) if np.any(bad_rows[rows == k])]
+    spec = problem.spec
+    params = {spec.parameters[problem.free[j].index].name for j in bad_cols if problem.free[j].kind == "parameter"}
+    where = [f"the rate of state '{st.name}'" for st, rate in zip(spec.states, spec.rates) if symbols(rate) & params]
+    where += [f"output '{o.name}'" for o, e in zip(spec.outputs, spec.output_exprs) if symbols(e) & params]
+    return FitError(f"the derivatives of {', '.join(outs)} with respect to {values} are not finite {at} "
+                    "(an equation overflows or meets inf/inf, 0/0 or inf - inf there"
+                    + (f"; involved: {', '.join(where)}" if where else "") + ")",
+                    hint="the optimiser cannot see past such a point, so a fit ending there would be a wrong answer: "
+                         "rewrite the equation so that its intermediate values stay finite (e.g. exp(a)/exp(b) as "
+                         "exp(a - b)), or bound the values away from where it fails")
 
 
 def fit(problem: Problem, settings: FitSettings = FitSettings()) -> FitResult:
@@ -435,6 +465,8 @@ def fit(problem: Problem, settings: FitSettings = FitSettings()) -> FitResult:
     if needs_reweighting(groups, len(outputs)):
         x, sig, converged, message, reweighting = _settle_noise_levels(problem, x, sig, groups, converged, message,
                                                                       passes, settings)
+    else:
+        converged, message = _judge_stationarity(problem, x, sig, groups, converged, message)
     return _result(problem, x, sig, estimated, groups, outputs, converged, message, nfev, starts_info,
                    time.perf_counter() - t_start, settings, reweighting)
 
@@ -489,6 +521,32 @@ def _settle_noise_levels(problem, x, sig, groups, converged, message, passes, st
     return x, sig, converged, message, info
 
 
+def _judge_stationarity(problem, x, sig, groups, converged, message):
+    """The optimiser's own stop (xtol, ftol, gtol) says the steps became small, not that the
+    point is stationary: it also stops at the edge of a region where the model cannot be
+    evaluated (trial points beyond give NaN or overflow and are rejected).  So the weighted
+    Gauss-Newton step from the final point, in the values not at a bound and determined by
+    the data, must move none of them by CONVERGED_STEP of its standard error or more
+    (it is 0 at a stationary point, whatever the curvature); otherwise NOT CONVERGED."""
+    estimated = np.zeros(len(sig), bool)
+    for g in groups:
+        estimated[list(g.members)] = True
+    lik = ConcentratedLikelihood(problem, np.where(estimated, np.nan, sig), groups)
+    c = lik.at(x)
+    if c is None:
+        return converged, message
+    usable = lik.interior(x) & np.isfinite(c.point.se) & (c.point.se > 0)
+    step = lik.gauss_newton_step(c, usable)
+    measure = step_in_standard_errors(step, c.point.se)
+    if measure >= CONVERGED_STEP:
+        j = int(np.nanargmax(np.where(usable, np.abs(step) / np.where(usable, c.point.se, 1.0), -1.0)))
+        message += (f"; the fit stopped where the next step would still move {problem.names[j]} by {measure:.3g} "
+                    f"standard errors (converged below {CONVERGED_STEP:g}): the optimiser may have met values where "
+                    "the model cannot be evaluated (NaN or overflow), or run out of evaluations")
+        converged = False
+    return converged, message
+
+
 def _update_sigmas(problem, x, sig, groups) -> np.ndarray:
     """Maximum-likelihood sigmas of the estimated groups at ``x`` (pooled over each group's
     outputs); given sigmas, and any that cannot be computed there, kept."""
@@ -533,14 +591,19 @@ def _result(problem: Problem, x, sig, estimated, groups, outputs, converged, mes
     given = np.array([sig[r] if not estimated[o] else np.nan for r, o in enumerate(outputs)])
     loglik = gaussian_loglik(sse_o, n_o, given, groups)
     k = p + len(groups)
-    dof = n - p
-    if dof <= 0:
+    if n - p <= 0:
         raise FitError(f"{n} observations cannot determine {p} free values", hint="add data or fix parameters")
-    # sigmas for the covariance: each group's pooled ML sigma, small-sample corrected by n/(n - p)
+    # sigmas for the covariance: each group's pooled ML sigma, small-sample corrected by n/(n - rank)
+    # (n - p at full rank; a rank deficiency leaves n - rank residual degrees of freedom, as in OLS)
     sig_ml = ml_sigmas(sse_o, n_o, np.where(np.isnan(given), 1.0, given), groups)
+    rows = rows_by_output(problem)
+    J1 = problem.jacobian(x, np.ones(len(outputs)))
+    if not np.all(np.isfinite(J1)):
+        raise nonfinite_derivatives(problem, x, J1, "at the estimate the fit stopped at")
+    rank = covariance_from_jacobian(J1 / sig_ml[rows][:, None]).rank
+    dof = n - rank
     sig_cov = np.array([np.sqrt(sig_ml[r] ** 2 * n / dof) if estimated[o] else sig[r] for r, o in enumerate(outputs)])
-    J = problem.jacobian(x, sig_cov)
-    cv = covariance_from_jacobian(J)
+    cv = covariance_from_jacobian(J1 / sig_cov[rows][:, None])
     cov, rank, cond = cv.matrix, cv.rank, cv.condition
     se = np.sqrt(np.diag(cov))
     q = float(stats.t.ppf(0.975, dof)) if groups else float(stats.norm.ppf(0.975))

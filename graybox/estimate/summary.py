@@ -29,8 +29,8 @@ def fit_summary(res) -> str:
             if not p.determined:
                 note = "NOT DETERMINED by the data (no std. error)"
             if p.clipped:
-                side = "both bounds" if p.clipped == "both" else f"{p.clipped} bound"
-                note = "; ".join(filter(None, [note, f"interval clipped at the {side}"]))
+                side = "both bounds" if p.clipped == "both" else f"the {p.clipped} bound"
+                note = "; ".join(filter(None, [note, f"interval clipped at {side}"]))
             interval = f"[{_fmt(p.ci95[0])}, {_fmt(p.ci95[1])}]"
             se = _fmt(p.stderr)
         lines.append(f"{name:<22} {_fmt(p.estimate):>13} {se:>12} {interval:>29}  {p.units:<10} {note}")

@@ -71,6 +71,19 @@ CASES = {
     "inline tables nested thousands deep": ("[data]", "[study2]\nx = " + "{a = " * 3000 + "1" + "}" * 3000
                                             + "\n\n[data]", "nested more than 32", ()),
     "misspelt model symbol": (RATE, RATE.replace("T_room", "T_rom"), "'T_rom' is not defined", ()),
+    # issue 13 section 3: free values no output depends on, and noise groups (graybox/config.py)
+    "unused free parameter": (UA, UA + "\n\n[parameters.spare]\nguess = 1.0\nbounds = [0.1, 10.0]",
+                              "parameter 'spare' is free, but no measured output depends on it", ()),
+    "estimated initial state no output sees": (
+        "initial_bounds = [0.0, 100.0]",
+        'initial_bounds = [0.0, 100.0]\n\n[model.states.spare]\nunits = "K"\nrate = "-spare*UA/(M*cp)"\n'
+        'initial = "estimate"\n\n[model.outputs.T]\nexpr = "T"',
+        "the initial value of state 'spare' is to be estimated", ()),
+    "noise group of one output": (NOISE, NOISE + '\n\n[noise.groups]\nalone = ["T"]', "names 1 output(s)", ()),
+    "noise group naming an unknown output": (NOISE, NOISE + '\n\n[noise.groups]\npair = ["T", "T_vessel"]',
+                                             "'T_vessel' is not a measured output", ()),
+    "noise group that is not a list": (NOISE, NOISE + '\n\n[noise.groups]\npair = "T"',
+                                       "a noise group is a list of output names", ()),
 }
 
 
