@@ -93,7 +93,11 @@ def _check_name(parent: Table, name: str) -> None:
 
 
 def build_spec(model: Table, parameters: Table) -> ModelSpec:
-    """Parse and check the model; raise ModelError/ConfigError with a location on any fault."""
+    """Parse and check the model (the module docstring lists the checks) and return the spec,
+    with warnings for parameters and inputs no equation uses.  ``model`` and ``parameters``
+    are the ``[model]`` and ``[parameters]`` tables; nothing in them is modified.  Raises
+    ModelError or ConfigError naming the file, table and key (with a caret under the column
+    for an equation) at the first fault."""
     model.check_keys(MODEL_KEYS)
     roles: dict[str, tuple[str, Table]] = {}
 

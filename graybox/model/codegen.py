@@ -142,6 +142,8 @@ class Emitter:
         raise TypeError(node)
 
     def assign(self, target: str, node: Node) -> None:
+        """Append ``target = <value of node>`` (``target`` is generated text such as ``out[0, 1]``),
+        emitting the node's temporaries first."""
         self.lines.append(f"{target} = {self.value(node)}")
 
 

@@ -39,6 +39,7 @@ class Node:
     __slots__ = ()
 
     def children(self) -> tuple["Node", ...]:
+        """The node's operands, left to right (empty for a leaf)."""
         return ()
 
     def __post_init__(self) -> None:
@@ -53,76 +54,98 @@ class Node:
 
 @dataclass(frozen=True, slots=True)
 class Num(Node):
+    """A number, always finite: parsing refuses and folding never makes an infinite or NaN one."""
+
     value: float
     _hash: int = field(init=False, repr=False, compare=False)
 
 
 @dataclass(frozen=True, slots=True)
 class Sym(Node):
+    """A symbol: a state, input, parameter, constant or derived quantity, by name."""
+
     name: str
     _hash: int = field(init=False, repr=False, compare=False)
 
 
 @dataclass(frozen=True, slots=True)
 class BinOp(Node):
+    """An arithmetic operation ``left op right``, ``op`` one of ``+ - * / **``."""
+
     op: str  # + - * / **
     left: Node
     right: Node
     _hash: int = field(init=False, repr=False, compare=False)
 
     def children(self):
+        """``(left, right)``."""
         return (self.left, self.right)
 
 
 @dataclass(frozen=True, slots=True)
 class Neg(Node):
+    """Negation ``-arg``."""
+
     arg: Node
     _hash: int = field(init=False, repr=False, compare=False)
 
     def children(self):
+        """``(arg,)``."""
         return (self.arg,)
 
 
 @dataclass(frozen=True, slots=True)
 class Call(Node):
+    """A call of a listed math function (:data:`FUNCTIONS`) with its arguments."""
+
     fn: str
     args: tuple[Node, ...]
     _hash: int = field(init=False, repr=False, compare=False)
 
     def children(self):
+        """The arguments, in order."""
         return self.args
 
 
 @dataclass(frozen=True, slots=True)
 class Compare(Node):
+    """A comparison ``left op right`` (``< <= > >= == !=``): a truth value."""
+
     op: str  # < <= > >= == !=
     left: Node
     right: Node
     _hash: int = field(init=False, repr=False, compare=False)
 
     def children(self):
+        """``(left, right)``."""
         return (self.left, self.right)
 
 
 @dataclass(frozen=True, slots=True)
 class Logic(Node):
+    """A boolean connective: ``left and right``, ``left or right``, or ``not left`` (``right`` None)."""
+
     op: str  # and, or, not (not has right=None)
     left: Node
     right: Node | None = None
     _hash: int = field(init=False, repr=False, compare=False)
 
     def children(self):
+        """``(left,)`` for ``not``, else ``(left, right)``."""
         return (self.left,) if self.right is None else (self.left, self.right)
 
 
 @dataclass(frozen=True, slots=True)
 class IfElse(Node):
+    """The conditional ``then if cond else other`` (also written ``where(cond, then, other)``)."""
+
     cond: Node
     then: Node
     other: Node
     _hash: int = field(init=False, repr=False, compare=False)
 
     def children(self):
+        """``(cond, then, other)``."""
         return (self.cond, self.then, self.other)
 
 
@@ -164,6 +187,8 @@ def caret_message(text: str, col: int, message: str) -> str:
 
 
 def is_valid_symbol_name(name: str) -> bool:
+    """True when ``name`` can name a symbol: a Python identifier, not a keyword, not starting with
+    an underscore, and not reserved (:data:`RESERVED`: function names, ``t``, ``pi``, ...)."""
     return (
         isinstance(name, str)
         and name.isidentifier()
@@ -502,6 +527,7 @@ def _fold(op: str, *args: Num) -> Num | None:
 
 
 def add(a: Node, b: Node) -> Node:
+    """``a + b``, simplified (zero terms dropped, numbers folded, ``a + -b`` as ``a - b``)."""
     if _is(a, 0.0):
         return b
     if _is(b, 0.0):
@@ -514,6 +540,7 @@ def add(a: Node, b: Node) -> Node:
 
 
 def sub(a: Node, b: Node) -> Node:
+    """``a - b``, simplified (``a - a`` is zero, numbers folded, ``a - -b`` as ``a + b``)."""
     if _is(b, 0.0):
         return a
     if _is(a, 0.0):
@@ -528,6 +555,7 @@ def sub(a: Node, b: Node) -> Node:
 
 
 def mul(a: Node, b: Node) -> Node:
+    """``a * b``, simplified (zero and one factors, signs pulled out, numbers folded)."""
     if _is(a, 0.0) or _is(b, 0.0):
         return ZERO
     if _is(a, 1.0):
@@ -550,6 +578,7 @@ def mul(a: Node, b: Node) -> Node:
 
 
 def div(a: Node, b: Node) -> Node:
+    """``a / b``, simplified (``0 / b`` is zero unless b is the number zero, ``a / 1`` is a, numbers folded)."""
     if _is(a, 0.0) and not _is(b, 0.0):
         return ZERO
     if _is(b, 1.0):
@@ -564,6 +593,7 @@ def div(a: Node, b: Node) -> Node:
 
 
 def power(a: Node, b: Node) -> Node:
+    """``a ** b``, simplified (exponents zero and one, numbers folded)."""
     if _is(b, 0.0):
         return ONE
     if _is(b, 1.0):
@@ -574,6 +604,7 @@ def power(a: Node, b: Node) -> Node:
 
 
 def neg(a: Node) -> Node:
+    """``-a``, simplified (a number negated, a double negation removed)."""
     if isinstance(a, Num):
         return Num(-a.value) if a.value != 0.0 else ZERO
     if isinstance(a, Neg):
@@ -582,6 +613,7 @@ def neg(a: Node) -> Node:
 
 
 def call(fn: str, *args: Node) -> Node:
+    """``fn(*args)``, folded to a number when every argument is one and the value is finite."""
     if all(isinstance(a, Num) for a in args) and fn in _MATH:
         folded = _fold(fn, *args)
         if folded is not None:
@@ -590,12 +622,14 @@ def call(fn: str, *args: Node) -> Node:
 
 
 def ifelse(c: Node, a: Node, b: Node) -> Node:
+    """``a if c else b``, simplified to ``a`` when both branches are the same tree."""
     if a == b:
         return a
     return IfElse(c, a, b)
 
 
 def binop(op: str, a: Node, b: Node) -> Node:
+    """The simplifying constructor for ``op`` (``+ - * / **``) applied to ``a`` and ``b``."""
     return {"+": add, "-": sub, "*": mul, "/": div, "**": power}[op](a, b)
 
 
@@ -697,6 +731,7 @@ def _diff_call(node: Call, d: Callable[[Node], Node]) -> Node:
 
 
 def gradient(node: Node, variables: Iterable[str]) -> list[Node]:
+    """``[d node / d v for v in variables]``, each simplified (see :func:`diff`)."""
     memo: dict = {}
     out = []
     for v in variables:

@@ -26,6 +26,11 @@ SCOPE_LOCAL = "local"
 
 @dataclass(frozen=True)
 class StateDef:
+    """A state: its name, units (text as declared), rate equation as a tree (per the model's
+    ``time_units``, derived quantities not yet inlined) and as written, its initial mode
+    (``measured``, ``steady``, ``estimate``) or given value in the state's units, and the
+    bounds of an estimated or steady initial value (used as the steady-state guess)."""
+
     name: str
     units: str
     rate: Node
@@ -36,6 +41,9 @@ class StateDef:
 
 @dataclass(frozen=True)
 class InputDef:
+    """An input: name, units (text as declared) and how it is held between samples
+    (``previous``: the last value holds; ``linear``: interpolated)."""
+
     name: str
     units: str
     hold: str = "previous"
@@ -43,6 +51,11 @@ class InputDef:
 
 @dataclass(frozen=True)
 class ParameterDef:
+    """A parameter: name, units, starting guess and bounds (in its units; infinite when open),
+    whether it is held fixed, its scope (``shared`` by every experiment or ``local`` to each),
+    the prior table as written (read by the posterior layer) and whether it is sampled in log
+    space (then its lower bound is positive)."""
+
     name: str
     units: str
     guess: float
@@ -56,6 +69,8 @@ class ParameterDef:
 
 @dataclass(frozen=True)
 class ConstantDef:
+    """A named constant: its value in its declared units (substituted into every equation)."""
+
     name: str
     value: float
     units: str
@@ -63,6 +78,9 @@ class ConstantDef:
 
 @dataclass(frozen=True)
 class DerivedDef:
+    """A derived quantity: name, defining tree (over symbols declared before it in dependency
+    order), the text as written and its units (inferred, or declared and checked)."""
+
     name: str
     expr: Node
     text: str
@@ -71,6 +89,9 @@ class DerivedDef:
 
 @dataclass(frozen=True)
 class OutputDef:
+    """A measured output: name, defining tree and text, units, and the state it measures when it
+    is just that state (then the state may start from its first measurement)."""
+
     name: str
     expr: Node
     text: str
@@ -100,27 +121,33 @@ class ModelSpec:
     # -- names -------------------------------------------------------------------------------
     @property
     def state_names(self) -> list[str]:
+        """State names in declaration order (the order of ``x``)."""
         return [s.name for s in self.states]
 
     @property
     def input_names(self) -> list[str]:
+        """Input names in declaration order (the order of ``u``)."""
         return [u.name for u in self.inputs]
 
     @property
     def parameter_names(self) -> list[str]:
+        """Parameter names in declaration order (the order of ``theta``), fixed ones included."""
         return [p.name for p in self.parameters]
 
     @property
     def output_names(self) -> list[str]:
+        """Measured output names in declaration order."""
         return [o.name for o in self.outputs]
 
     def parameter(self, name: str) -> ParameterDef:
+        """The parameter called ``name``; KeyError when there is none."""
         for p in self.parameters:
             if p.name == name:
                 return p
         raise KeyError(name)
 
     def state(self, name: str) -> StateDef:
+        """The state called ``name``; KeyError when there is none."""
         for s in self.states:
             if s.name == name:
                 return s
@@ -140,6 +167,7 @@ class ModelSpec:
         return mapping
 
     def inline(self, node: Node) -> Node:
+        """``node`` with every constant and derived quantity substituted (simplified)."""
         return substitute(node, self._inline_map)
 
     @cached_property
@@ -154,10 +182,12 @@ class ModelSpec:
 
     @cached_property
     def output_exprs(self) -> tuple[Node, ...]:
+        """Each output's tree over states, inputs and parameters only (derived quantities inlined)."""
         return tuple(self.inline(o.expr) for o in self.outputs)
 
     @cached_property
     def derived_exprs(self) -> dict[str, Node]:
+        """Each derived quantity's tree with the constants and earlier derived quantities inlined."""
         return {d.name: self._inline_map[d.name] for d in self.derived}
 
     # -- symbolic derivatives ------------------------------------------------------------------
@@ -178,22 +208,27 @@ class ModelSpec:
 
     @cached_property
     def out_jac_states(self) -> tuple[tuple[Node, ...], ...]:
+        """d output_r / d state_j."""
         return tuple(tuple(diff(h, x) for x in self.state_names) for h in self.output_exprs)
 
     @cached_property
     def out_jac_params(self) -> tuple[tuple[Node, ...], ...]:
+        """d output_r / d parameter_k."""
         return tuple(tuple(diff(h, p) for p in self.parameter_names) for h in self.output_exprs)
 
     def used_symbols(self) -> set[str]:
+        """Every symbol the inlined rates and outputs use (to warn about unused parameters and inputs)."""
         used: set[str] = set()
         for n in (*self.rates, *self.output_exprs):
             used |= symbols(n)
         return used
 
     def guesses(self) -> np.ndarray:
+        """The parameters' guesses in parameter order, shape (n_p,)."""
         return np.array([p.guess for p in self.parameters], dtype=float)
 
     def describe(self) -> str:
+        """A readable summary: sizes, then each rate, derived quantity and output as written, with units."""
         lines = [f"model '{self.name}': {len(self.states)} state(s), {len(self.inputs)} input(s), "
                  f"{len(self.parameters)} parameter(s) ({sum(not p.fixed for p in self.parameters)} free), "
                  f"{len(self.outputs)} output(s)"]

@@ -44,6 +44,7 @@ class U:
     boolean: bool = False
 
     def text(self) -> str:
+        """The units for a message: pint's short form, or 'a bare number', 'a truth value', '(a reading)'."""
         if self.boolean:
             return "a truth value"
         if self.unit is None:
@@ -86,6 +87,8 @@ def _factor(a: pint.Unit, b: pint.Unit) -> float | None:
 
 
 def same_units(a: U, b: U) -> bool:
+    """True when ``a`` and ``b`` are the same units with factor one (within 1e-12); a bare number
+    matches anything."""
     if a.unit is None or b.unit is None:
         return True
     f = _factor(a.unit, b.unit)
@@ -99,6 +102,8 @@ def _short(node: Node, limit: int = 200) -> str:
 
 
 def mismatch_message(left: Node, lu: U, right: Node, ru: U, context: str) -> str:
+    """The message for two terms whose units differ: both terms (elided past 200 characters) with
+    their units, and the conversion factor when only the scale differs."""
     f = _factor(lu.unit, ru.unit) if lu.unit is not None and ru.unit is not None else None
     base = f"{context}: '{_short(left)}' is in {lu.text()} but '{_short(right)}' is in {ru.text()}"
     if f is not None:
@@ -116,9 +121,12 @@ class UnitChecker:
         self.ureg = registry()
 
     def fail(self, message: str, hint: str | None = None):
+        """Raise ModelError with ``message`` at this checker's location (never returns)."""
         raise ModelError(message, where=self.where, hint=hint)
 
     def infer(self, node: Node) -> U:  # noqa: C901 - one case per node kind
+        """The units of ``node``; ModelError (located, naming the offending term) at the first
+        inconsistency (see the module docstring for the rules)."""
         if isinstance(node, Num):
             return U(None)
         if isinstance(node, Sym):

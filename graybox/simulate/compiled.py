@@ -73,6 +73,12 @@ class SegmentTable:
 
 @dataclass(frozen=True)
 class TimelineTables:
+    """A whole timeline as the kernels read it: every output's observations side by side in one
+    flat column range (``offsets[o]`` to ``offsets[o] + sizes[o]``, all observations of the
+    record, compared or not), the observed values ``y_obs`` (n_cols,) in the record's (model)
+    units, one :class:`SegmentTable` per segment, the linear-input mask ``lin`` (n_u,) and the
+    number of compared observations per output ``n_used`` (n_outputs,)."""
+
     offsets: dict[str, int]  # output -> first flat column
     sizes: dict[str, int]  # output -> number of observations (all, compared or not)
     n_cols: int
@@ -83,6 +89,10 @@ class TimelineTables:
 
 
 def segment_table(seg: SegmentPlan, output_names: list[str], offsets: Mapping[str, int]) -> SegmentTable:
+    """The flat tables of one segment: knot times (s) and inputs copied as fresh C-contiguous,
+    writeable arrays (numba compiles a read-only array as another type), and the compared
+    observations sorted by knot in CSR form (``knot_ptr``), each with its output row and flat
+    column (``offsets`` from :func:`timeline_tables`)."""
     knots, rows, cols = [], [], []
     for r, o in enumerate(output_names):
         k = np.asarray(seg.obs_knot[o], np.int64)
@@ -106,6 +116,8 @@ def _own(a, dtype) -> np.ndarray:
 
 
 def timeline_tables(spec: ModelSpec, timeline: Timeline) -> TimelineTables:
+    """The kernel tables of ``timeline`` for ``spec``'s outputs (see :class:`TimelineTables`);
+    pure, built once per timeline by :meth:`CompiledModel.tables`."""
     names = spec.output_names
     rec = timeline.record
     sizes = {o: int(rec.outputs[o].t.size) for o in names}
@@ -154,7 +166,13 @@ class _Run:
 
 
 class CompiledModel:
-    """The compiled simulator of one spec (build it with :func:`compile_model`)."""
+    """The compiled simulator of one spec (build it with :func:`compile_model`).
+
+    ``module`` is the imported generated module (:func:`graybox.simulate.kernel_source.module_source`);
+    ``fast_path=False`` keeps explicit runs without sensitivities on the general kernel (the
+    reference's order of operations).  Raises ``ValueError`` for a spec whose right-hand side
+    is a Python function (nothing to compile).  Safe to share between threads: the per-timeline
+    tables are built under a lock, the kernels hold no state between calls."""
 
     def __init__(self, spec: ModelSpec, module: ModuleType, fast_path: bool = True):
         if spec.python_rhs is not None:
@@ -171,8 +189,13 @@ class CompiledModel:
     # -- public ------------------------------------------------------------------------------
     def simulate(self, timeline: Timeline, theta, *, x0_est=None, sens: bool = False,
                  tol: Tolerances = Tolerances()) -> SimResult:
-        """Outputs at observation times for each parameter set (rows of ``theta``): the same
-        result as :func:`graybox.simulate.reference.simulate`."""
+        """Outputs at observation times for each parameter set (rows of ``theta``, shape
+        (n_sets, n_p)), with ``sens`` also their sensitivities: the same result as
+        :func:`graybox.simulate.reference.simulate` (see
+        :class:`graybox.simulate.contract.SimResult` for shapes).  ``x0_est`` (n_sets,
+        n_segments * n_estimated_states) is required when the spec estimates initial states.
+        Raises ``ValueError`` for an unknown ``tol.method``, a ``theta`` of the wrong width or
+        a missing ``x0_est``."""
         theta, x0_est = self._check(timeline, theta, x0_est, tol)
         tab = self.tables(timeline)
         n_sets = theta.shape[0]
@@ -194,8 +217,9 @@ class CompiledModel:
         """Per set and output the weighted sum of squared residuals (observed - simulated)
         over the compared observations (``timeline.used``), without storing trajectories.
 
-        Returns ``sse`` (n_sets, n_outputs; NaN for a set that failed), ``n_used``
-        (n_outputs,) and ``ok`` (n_sets,)."""
+        ``weights``: per output name a factor on its squared residuals (default 1; an
+        unknown output is a ``ValueError``).  Returns ``sse`` (n_sets, n_outputs; NaN for a
+        set that failed), ``n_used`` (n_outputs,) and ``ok`` (n_sets,)."""
         theta, x0_est = self._check(timeline, theta, x0_est, tol)
         w = self._weights(weights)
         tab = self.tables(timeline)
@@ -394,7 +418,9 @@ def compile_model(spec: ModelSpec, *, fast_path: bool = True) -> CompiledModel:
     ``fast_path=False`` sends explicit runs without sensitivities through the general kernel,
     whose arithmetic is in the reference's order of operations (bit-for-bit the same step
     decisions as a one-set reference run); the default scalar fast path differs from it by
-    rounding only (a reciprocal instead of a division, reassociated stage sums)."""
+    rounding only (a reciprocal instead of a division, reassociated stage sums).  Raises
+    ``ValueError`` when the compiled core cannot run ``spec`` (a Python right-hand side, or
+    numba not importable: see :func:`compiled_available`)."""
     if not compiled_available(spec):
         raise ValueError(PYTHON_RHS_NOTE if spec.python_rhs is not None else "numba is not available")
     return _compile_cached(spec, bool(fast_path))

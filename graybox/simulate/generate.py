@@ -41,6 +41,8 @@ ARGS = ("x", "u", "p", "out")
 
 
 def symbol_env(spec: ModelSpec) -> dict[str, str]:
+    """The access expression of every state (``x[i]``), input (``u[m]``) and parameter (``p[k]``)
+    of ``spec``, by name, in the spec's order: the only way a symbol reaches generated code."""
     env = {name: f"x[{i}]" for i, name in enumerate(spec.state_names)}
     env.update({name: f"u[{m}]" for m, name in enumerate(spec.input_names)})
     env.update({name: f"p[{k}]" for k, name in enumerate(spec.parameter_names)})
@@ -122,18 +124,22 @@ class ModelFunctions:
 
     @property
     def n_x(self) -> int:
+        """Number of states."""
         return len(self.spec.states)
 
     @property
     def n_u(self) -> int:
+        """Number of inputs."""
         return len(self.spec.inputs)
 
     @property
     def n_p(self) -> int:
+        """Number of parameters (fixed ones included: the engines see every parameter)."""
         return len(self.spec.parameters)
 
     @property
     def n_y(self) -> int:
+        """Number of measured outputs."""
         return len(self.spec.outputs)
 
 

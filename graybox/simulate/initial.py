@@ -46,7 +46,11 @@ def steady_state(b: Batch, x_guess: np.ndarray, u: np.ndarray, rows: np.ndarray,
 
 
 def initial_states(b: Batch, funcs, seg: SegmentPlan, timeline: Timeline, x0_est, want_sens: bool):
-    """x0 (n_x, n_sets), S0 (n_x, n_c, n_sets) or None, ok flags."""
+    """The states at the start of segment ``seg`` for every set of the batch ``b``:
+    ``x0`` (n_x, n_sets) in the states' units, ``S0`` (n_x, n_c, n_sets) = d x0 / d column
+    when ``want_sens`` (else None), and ``ok`` (n_sets,) False where no steady state was
+    found.  ``x0_est`` (n_sets, n_segments, n_estimated) holds the estimated initial states
+    (read only for states whose mode is ``estimate``)."""
     spec = funcs.spec
     n_x, n_sets = b.n_x, b.n_sets
     x0 = np.zeros((n_x, n_sets))

@@ -81,11 +81,15 @@ class Interval:
     linear: bool
 
     def at(self, s: float) -> np.ndarray:
+        """The inputs ``s`` seconds into the interval (``u0`` for held inputs), shape (n_u,)."""
         return self.u0 + self.slope * s if self.linear else self.u0
 
 
 class Batch:
-    """Evaluates the generated functions on a batch (allocating zeroed outputs)."""
+    """Evaluates the generated functions on a batch of parameter sets, allocating a zeroed
+    ``out`` per call (trailing axis: the set).  ``funcs`` is a
+    :class:`graybox.simulate.generate.ModelFunctions`, ``p`` the parameters (n_p, n_sets) in
+    the spec's order, ``n_c`` the number of sensitivity columns."""
 
     def __init__(self, funcs, p: np.ndarray, n_c: int):
         self.F = funcs
@@ -100,9 +104,13 @@ class Batch:
         return out
 
     def f(self, x, u):
+        """State rates f(x, u, p) per second, shape (n_x, n_sets), for states ``x`` (n_x, n_sets)
+        and inputs ``u`` (n_u,)."""
         return self._call("f", x, u, (self.n_x,))
 
     def fx(self, x, u):
+        """Jacobian d f_i / d x_j, shape (n_x, n_x, n_sets) (exact for trees; central differences
+        for a Python right-hand side)."""
         return self._call("fx", x, u, (self.n_x, self.n_x))
 
     def sens_rhs(self, x, S, u, fx=None):

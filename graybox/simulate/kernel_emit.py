@@ -49,6 +49,7 @@ class KernelEmitter(Emitter):
 
 
 def indent(lines: list[str], level: int) -> list[str]:
+    """The generated ``lines`` indented by ``level`` blocks of four spaces (blank lines kept blank)."""
     pad = "    " * level
     return [pad + line if line else line for line in lines]
 

@@ -42,7 +42,14 @@ def _choose_method(b: Batch, x0, seg: SegmentPlan, tol: Tolerances) -> str:
 
 def simulate(funcs, timeline: Timeline, theta: np.ndarray, *, x0_est: np.ndarray | None = None,
              sens: bool = False, tol: Tolerances = Tolerances()) -> SimResult:
-    """Outputs at observation times for each parameter set (rows of ``theta``)."""
+    """Outputs at observation times for each parameter set (rows of ``theta``, shape
+    (n_sets, n_p) in the spec's parameter order), with ``sens`` also their exact forward
+    sensitivities; ``funcs`` are the spec's :func:`graybox.simulate.generate.generate`
+    functions.  One step size is shared by the batch.  ``x0_est`` (n_sets, n_segments *
+    n_estimated_states) gives the estimated initial states (required when there are any,
+    else ``ValueError``).  See :class:`graybox.simulate.contract.SimResult` for the shapes;
+    a set whose integration fails has ``ok`` False and NaN outputs, the others are
+    unaffected."""
     theta = np.atleast_2d(np.asarray(theta, dtype=float))
     n_sets = theta.shape[0]
     spec = funcs.spec
@@ -137,6 +144,8 @@ def _static_segment(b: Batch, funcs, seg: SegmentPlan, outputs, sens_out, n_c) -
 
 
 def h_min(span: float) -> float:
+    """The smallest step (s) allowed in a knot interval of length ``span`` (s): 1e-12 of the
+    interval, and never below 1e-12 s; the kernels use the same rule."""
     return 1e-12 * max(span, 1.0)
 
 
@@ -190,7 +199,13 @@ def _integrate_segment(b: Batch, funcs, seg, x, S, ok, method, tol: Tolerances, 
 def finite_difference_sensitivities(funcs, timeline: Timeline, theta, x0_est, tol: Tolerances) -> SimResult:
     """Sensitivities of a Python right-hand side: central differences, every perturbed set in
     the same batch as the nominal one, so they share one step sequence (differences of
-    smooth functions, not of step-size decisions)."""
+    smooth functions, not of step-size decisions).
+
+    Per parameter set one reference batch of 1 + 2 * n_c rows (nominal, then +h and -h per
+    column, h = 1e-6 * max(1, |value|) in the column's units); the result is a
+    :class:`graybox.simulate.contract.SimResult` whose ``sens`` holds the differences,
+    ``ok`` is False for a set when any of its rows failed and ``n_steps`` sums the batches'
+    steps."""
     theta = np.atleast_2d(np.asarray(theta, float))
     n_sets, n_p = theta.shape
     n_seg, n_est = len(timeline.segments), len(timeline.estimated_states)

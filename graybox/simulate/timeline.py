@@ -37,6 +37,12 @@ REASON_OUTSIDE = "outside every segment"
 
 @dataclass(frozen=True)
 class SegmentPlan:
+    """One segment of a timeline, ready to integrate: ``index`` (0-based, in the record's
+    order), the knots ``t`` (n_knots,) in seconds, the inputs ``u`` (n_knots, n_u) at the knots
+    in the model's units, per output the knot (``obs_knot``) and the position in the record's
+    output series (``obs_index``) of each compared observation, and the first measured value
+    of each state that starts from a measurement (``x0_measured``)."""
+
     index: int
     t: np.ndarray  # knots, seconds
     u: np.ndarray  # (n_knots, n_u) input values at the knots
@@ -46,6 +52,7 @@ class SegmentPlan:
 
     @property
     def n_knots(self) -> int:
+        """Number of knots (restart points of the integrator) in the segment."""
         return int(self.t.size)
 
     @cached_property
@@ -58,6 +65,7 @@ class SegmentPlan:
         return knots, np.ascontiguousarray(self.u[knots].T)[:, :, None], rows
 
     def knot_has_obs(self) -> np.ndarray:
+        """Per knot (n_knots,), True where some output has a compared observation."""
         flag = np.zeros(self.t.size, bool)
         for k in self.obs_knot.values():
             flag[k] = True
@@ -66,6 +74,13 @@ class SegmentPlan:
 
 @dataclass(frozen=True)
 class Timeline:
+    """The integration plan of one record for one model (built by :func:`plan`): the record,
+    its segments, which inputs are linear between samples (``linear``, (n_u,) bool), per output
+    the mask of the observations compared in a fit (``used``, over all the output's
+    observations), per output the observations left out and why (``excluded``: reason ->
+    count), and the states whose initial value is estimated per segment
+    (``estimated_states``, in the spec's order)."""
+
     record: Record
     segments: tuple[SegmentPlan, ...]
     linear: np.ndarray  # (n_u,) bool: input interpolated linearly
@@ -75,14 +90,24 @@ class Timeline:
 
     @property
     def n_obs(self) -> int:
+        """Number of compared observations over all outputs."""
         return int(sum(m.sum() for m in self.used.values()))
 
     def n_obs_of(self, output: str) -> int:
+        """Number of compared observations of ``output`` (KeyError for an unknown output)."""
         return int(self.used[output].sum())
 
 
 def plan(spec: ModelSpec, record: Record) -> Timeline:
-    """The integration plan; raises DataError when the record cannot feed the model."""
+    """The integration plan of ``record`` for ``spec``: per segment the knots (every input
+    sample time and every compared observation time), the inputs there, the compared
+    observations and the measured initial states (see the module docstring for the rules).
+    The record is not modified.
+
+    Raises DataError (naming the record, segment and output) when the record lacks a model
+    input or output, when a state to start from its measurement has no valid measurement in a
+    segment, when a given and a measured state cannot start at one instant, or when an output
+    has no observation left to compare; SimulationError when an input has no value at a knot."""
     missing_in = [u for u in spec.input_names if u not in record.inputs]
     missing_out = [o for o in spec.output_names if o not in record.outputs]
     if missing_in or missing_out:
