@@ -76,7 +76,8 @@ def _vector_literal(name: str, values) -> str:
 
 
 def coefficients_source() -> str:
-    """The method coefficients, taken from the reference module so both use the same bits."""
+    """The method coefficients, taken from :mod:`graybox.simulate.integrators` (the reference
+    engine's steppers) so that both engines use the same bits."""
     lines = [
         _array_literal("DPA", [list(r) for r in DP_A], 6),
         _vector_literal("DPC", DP_C),
