@@ -34,8 +34,9 @@ def fit_summary(res) -> str:
             interval = f"[{_fmt(p.ci95[0])}, {_fmt(p.ci95[1])}]"
             se = _fmt(p.stderr)
         lines.append(f"{name:<22} {_fmt(p.estimate):>13} {se:>12} {interval:>29}  {p.units:<10} {note}")
-    lines += ["", f"{'output':<22} {'sigma':>13} {'':>12} {'observations':>12}  shared"]
     groups = getattr(res, "noise_groups", {}) or {}
+    lines += ["", f"{'output':<22} {'sigma':>13} {'sigma is':>12} {'observations':>12}"
+                  + ("  noise group" if groups else "")]
     for o, s in res.sigmas.items():
         how = "estimated" if res.sigma_estimated[o] else "given"
         group = next((g for g, members in groups.items() if o in members), None)
