@@ -23,9 +23,15 @@
   estimator divides by the lag-0 value and removes each walker's mean, which lowers both its
   spread and its value: on stationary AR(1) walkers (tests/posterior/test_stop_rule.py) its
   spread across replicates is below the formula's, so a bound built on the formula errs
-  towards passing an honest chain.  The same estimator is biased low on short chains by
-  about (2M + 1 - tau) / n (the walker means' own error; some 20% at n = 50 tau), so it
-  creeps up as a chain lengthens.
+  towards passing an honest chain.
+* Bias of that estimator: each walker's autocovariances, taken about its own mean, are
+  low by about the variance of that mean, gamma(0) tau / n, at every lag; divided by the
+  lag-0 value (low by the same) and summed over the 2M + 1 lags of the window this gives
+  E[tau_hat] ~ tau (1 - (2M + 1 - tau) / n) (derived here from the standard bias of a
+  sample autocovariance about an estimated mean, e.g. Priestley, Spectral Analysis and
+  Time Series, 1981, section 5.3, from memory): about 18% low at n = 50 tau, so the
+  estimate creeps up as a chain lengthens, by (2M + 1 - tau) (1/n_1 - 1/n_2) from n_1 to
+  n_2 steps (checked against replicated AR(1) walkers in tests/posterior/test_stop_rule.py).
 * R-hat across groups of walkers: for m chains R-hat is about sqrt(1 + m / ESS) (Vats &
   Knudson, "Revisiting the Gelman-Rubin diagnostic", Statistical Science 36 (2021) 518-529,
   from memory; checked in tests/posterior/test_stop_rule.py), so the bound 1.01 goes with
@@ -58,7 +64,8 @@ RHAT_GROUPS = 4
 
 def autocorr_time(chain: np.ndarray) -> np.ndarray:
     """Integrated autocorrelation time per quantity of ``chain`` (n_steps, n_walkers, n_dim)."""
-    return np.asarray(integrated_time(chain, c=5, tol=0, quiet=True), float)
+    with np.errstate(invalid="ignore", divide="ignore"):  # NaN for a walker that has not moved
+        return np.asarray(integrated_time(chain, c=5, tol=0, quiet=True), float)
 
 
 AUTOCORR_C = 5.0  # Sokal's window constant, as passed to emcee
@@ -82,6 +89,16 @@ def autocorr_change_sd(tau: np.ndarray, n_before: int, n_now: int, n_walkers: in
         return np.full(tau.shape, np.inf)
     per_draw = 2.0 * (2.0 * AUTOCORR_C * tau + 1.0) / n_walkers
     return np.sqrt(per_draw * (1.0 / n_before - 1.0 / n_now))
+
+
+def autocorr_creep(tau: np.ndarray, n_before: int, n_now: int) -> np.ndarray:
+    """Expected relative rise of emcee's tau estimate from ``n_before`` to ``n_now`` steps of
+    a stationary chain, (2M + 1 - tau) (1/n_before - 1/n_now) with M = c tau (the estimator's
+    bias, module docstring)."""
+    tau = np.asarray(tau, float)
+    if n_before <= 0 or n_now <= n_before:
+        return np.zeros(tau.shape)
+    return ((2.0 * AUTOCORR_C - 1.0) * tau + 1.0) * (1.0 / n_before - 1.0 / n_now)
 
 
 def split_chains(x: np.ndarray) -> np.ndarray:

@@ -17,14 +17,15 @@ estimated initial states) and the noise parameters, with the priors of
 * Stop rule (checked every ``check_every`` steps; all must hold, see
   :func:`check_convergence`): the chain after burn-in is longer than ``tau_factor`` (50)
   times the largest integrated autocorrelation time estimated on it, and that estimate
-  differs from the one on the chain's first three quarters by less than its own estimation
-  noise allows (:func:`tau_bound`); rank-normalised split R-hat across four groups of
-  walkers below ``rhat_max`` (1.01; a heuristic here, the walkers being coupled); bulk ESS,
-  tail ESS and the ESS of the 95% interval's ends at least ``min_ess`` (400) for every
-  quantity (Vehtari et al. 2021), so that the median and the interval ends are known to
-  the Monte Carlo standard errors reported with them.  Burn-in is 2 tau_max and thinning
-  tau_min / 2 (the emcee documentation's rule).  A run stopped by ``max_steps`` is "not
-  converged" wherever it is reported.
+  differs from the one on the chain's first three quarters (less the rise the estimator's
+  bias alone gives) by less than its own estimation noise allows (:func:`tau_bound`);
+  rank-normalised split R-hat across four groups of walkers below ``rhat_max`` (1.01; a
+  heuristic here, the walkers being coupled); bulk ESS, tail ESS and the ESS of the 95%
+  interval's ends at least ``min_ess`` (400) for every quantity (Vehtari et al. 2021), so
+  that the median and the interval ends are known to the Monte Carlo standard errors
+  reported with them.  Burn-in is 2 tau_max and thinning tau_min / 2 (the emcee
+  documentation's rule).  A run stopped by ``max_steps`` is "not converged" wherever it is
+  reported.
 * Threads: the compiled simulation core releases the GIL, so each half-ensemble's rows are
   shared out over up to :func:`sampler_threads` threads; every row is simulated alone, so
   the samples do not depend on the thread count.
@@ -49,8 +50,8 @@ from graybox.estimate.fit import FitResult
 from graybox.estimate.problem import Problem
 from graybox.posterior.checks import lag_one, residual_checks
 from graybox.posterior.config import SamplerSettings, priors_from_spec
-from graybox.posterior.diagnostics import (CI95, DIAGNOSTIC_KEYS, RHAT_NOTE, autocorr_change_sd, autocorr_time,
-                                          chain_diagnostics, group_count, quantile_mcse)
+from graybox.posterior.diagnostics import (CI95, DIAGNOSTIC_KEYS, RHAT_NOTE, autocorr_change_sd, autocorr_creep,
+                                          autocorr_time, chain_diagnostics, group_count, quantile_mcse)
 from graybox.posterior.likelihood import LogPosterior
 from graybox.posterior.noise import KIND_AR1, NoiseLayout, noise_layout
 from graybox.posterior.priors import Prior
@@ -190,7 +191,7 @@ class Check:
 
     steps: int
     tau: np.ndarray  # on the chain after burn-in
-    tau_change: np.ndarray  # relative difference from the estimate on its first three quarters
+    tau_change: np.ndarray  # relative difference from the estimate on its first three quarters, less the creep
     tau_tol: np.ndarray  # the bound each change had to stay below
     burn_in: int
     rhat: np.ndarray
@@ -214,28 +215,36 @@ class Check:
 
     def failed(self, st: SamplerSettings) -> list[str]:
         out = []
-        if not self.long_enough:
+        if not np.all(np.isfinite(self.tau)):
+            out.append("the autocorrelation time could not be estimated (a walker has not moved)")
+        elif not self.long_enough:
             out.append(f"chain of {self.steps - self.burn_in} steps after burn-in is not longer than "
                        f"{st.tau_factor:g} x tau_max ({st.tau_factor * float(np.max(self.tau)):.0f})")
         if not self.tau_stable:
             k = _worst(self.tau_change / self.tau_tol)
             if math.isfinite(float(self.tau_change[k])):
                 out.append(f"tau differs by {100 * float(self.tau_change[k]):.1f}% from its estimate on the first "
-                           f"three quarters of the chain (bound {100 * float(self.tau_tol[k]):.1f}%, set by its "
-                           f"estimation noise)")
+                           f"three quarters of the chain, beyond its bias's creep (bound "
+                           f"{100 * float(self.tau_tol[k]):.1f}%, set by its estimation noise)")
             else:
                 out.append("tau could not be estimated on the chain's first three quarters")
         if not self.rhat_ok:
             value = _extreme(self.rhat, max)
-            out.append(f"R-hat {value:.4f} >= {st.rhat_max:g}" if value is not None else "R-hat not computed")
+            if not np.all(np.isfinite(self.rhat)):
+                out.append("R-hat not computed for every quantity")
+            else:
+                out.append(f"R-hat {value:.4f} >= {st.rhat_max:g}")
         if not self.ess_ok:
             value = _extreme(self.ess_min, min)
-            out.append(f"ESS {value:.0f} < {st.min_ess:g}" if value is not None else "ESS not computed")
+            if not np.all(np.isfinite(self.ess_min)):
+                out.append("ESS not computed for every quantity")
+            else:
+                out.append(f"ESS {value:.0f} < {st.min_ess:g}")
         return out
 
     def to_dict(self) -> dict:
         k = _worst(self.tau_change / self.tau_tol)
-        return {"steps": self.steps, "burn_in": self.burn_in, "tau_max": float(np.max(self.tau)),
+        return {"steps": self.steps, "burn_in": self.burn_in, "tau_max": _num(np.max(self.tau)),
                 "tau_change": _num(self.tau_change[k]), "tau_bound": _num(self.tau_tol[k]),
                 "rhat_max": _extreme(self.rhat, max), "ess_min": _extreme(self.ess_min, min),
                 "converged": self.converged}
@@ -265,9 +274,14 @@ def _num(v) -> float | None:
 
 
 def burn_and_thin(tau: np.ndarray, steps: int) -> tuple[int, int]:
-    """Burn-in 2 tau_max (at most half the chain), thinning tau_min / 2 (at least 1)."""
-    burn = int(min(math.ceil(2.0 * float(np.max(tau))), steps // 2))
-    thin = max(1, int(0.5 * float(np.min(tau))))
+    """Burn-in 2 tau_max (at most half the chain), thinning tau_min / 2 (at least 1).  A tau
+    that could not be estimated (NaN: a walker that has not moved yet) gives the longest
+    burn-in and no thinning."""
+    finite = np.asarray(tau, float)[np.isfinite(tau)]
+    if finite.size < np.size(tau):
+        return steps // 2, 1
+    burn = int(min(math.ceil(2.0 * float(np.max(finite))), steps // 2))
+    thin = max(1, int(0.5 * float(np.min(finite))))
     return burn, thin
 
 
@@ -302,8 +316,9 @@ def check_convergence(chain: np.ndarray, prev: Check | None, st: SamplerSettings
       lengthen); tau then re-estimated on the kept chain (after burn-in);
     * the kept chain is longer than ``tau_factor`` (50) x tau_max;
     * tau is stable: for every quantity, its relative difference from the estimate on the
-      kept chain's first three quarters is below :func:`tau_bound` (its estimation noise,
-      floor ``tau_rtol``);
+      kept chain's first three quarters, less the rise the estimator's bias alone gives
+      (:func:`graybox.posterior.diagnostics.autocorr_creep`), is below :func:`tau_bound`
+      (its estimation noise, floor ``tau_rtol``);
     * rank-normalised split R-hat across four walker groups below ``rhat_max`` (1.01;
       :func:`graybox.posterior.diagnostics.rhat_grouped`);
     * bulk ESS, tail ESS (5%/95%) and the ESS of the reported interval's ends (2.5%/97.5%)
@@ -320,8 +335,8 @@ def check_convergence(chain: np.ndarray, prev: Check | None, st: SamplerSettings
     n_part = int(STABILITY_PART * n_now)
     tau = autocorr_time(kept)
     with np.errstate(invalid="ignore", divide="ignore"):
-        if n_part >= 4:
-            change = np.abs(tau - autocorr_time(kept[:n_part])) / tau
+        if n_part >= 4:  # the difference beyond the estimator's expected creep (its bias shrinking with n)
+            change = np.abs((tau - autocorr_time(kept[:n_part])) / tau - autocorr_creep(tau, n_part, n_now))
         else:
             change = np.full(n_dim, np.inf)
         change = np.where(np.isfinite(change), change, np.inf)
@@ -474,7 +489,7 @@ class PosteriorResult:
             "burn_in": self.burn_in,
             "thin": self.thin,
             "draws": int(self.flat().shape[0]),
-            "tau": {n: float(t) for n, t in zip(self.names, self.tau)},
+            "tau": {n: _num(t) for n, t in zip(self.names, self.tau)},
             "acceptance": float(np.mean(self.acceptance)),
             "acceptance_min": float(np.min(self.acceptance)),
             "converged": self.converged,
@@ -482,8 +497,9 @@ class PosteriorResult:
             "criteria": {"tau_factor": self.settings.tau_factor, "tau_rtol": self.settings.tau_rtol,
                          "rhat_max": self.settings.rhat_max, "min_ess": self.settings.min_ess,
                          "rhat_note": RHAT_NOTE, "rhat_walker_groups": group_count(self.n_walkers),
-                         "tau_compared_with": f"its estimate on the first {STABILITY_PART:.0%} of the kept chain, "
-                                              "bound max(tau_rtol, 2 sd of that difference)",
+                         "tau_compared_with": f"its estimate on the first {STABILITY_PART:.0%} of the kept chain, less "
+                                              "the estimator's expected creep; bound max(tau_rtol, 2 sd of that "
+                                              "difference)",
                          "ess_of": "bulk, tail (5%, 95%) and interval ends (2.5%, 97.5%)"},
             "checks": self.history,
             "start": self.start_method,
@@ -688,8 +704,8 @@ def run_posterior(problem: Problem, fit_result: FitResult, noise: dict, settings
         k = _worst(check.tau_change / check.tau_tol)
         reason = (f"converged after {check.steps} steps: chain after burn-in > {st.tau_factor:g} x tau_max, tau "
                   f"stable within its noise ({100 * float(check.tau_change[k]):.1f}% from its estimate on the "
-                  f"first three quarters < {100 * float(check.tau_tol[k]):.1f}%), R-hat < {st.rhat_max:g}, bulk, "
-                  f"tail and interval-end ESS >= {st.min_ess:g}")
+                  f"first three quarters, less its bias's creep, < {100 * float(check.tau_tol[k]):.1f}%), "
+                  f"R-hat < {st.rhat_max:g}, bulk, tail and interval-end ESS >= {st.min_ess:g}")
     else:
         reason = f"not converged: stopped at the step limit of {st.max_steps} steps; " + "; ".join(check.failed(st))
     burn = check.burn_in
@@ -710,7 +726,8 @@ def run_posterior(problem: Problem, fit_result: FitResult, noise: dict, settings
         tau=check.tau, acceptance=np.asarray(sampler.acceptance_fraction, float), converged=converged, reason=reason,
         check=check, history=history, priors=priors, layout=layout, settings=st, seed=used_seed,
         start_method=start.method, fit_x=np.asarray(fit_result.x, float), warnings=warnings,
-        n_evaluations=n_start_sets + evaluate.n_sets, wall_s=time.perf_counter() - t0, engine=problem.engine.name, stats=stats,
+        n_evaluations=n_start_sets + evaluate.n_sets, wall_s=time.perf_counter() - t0, engine=problem.engine.name,
+        stats=stats,
     )
 
 

@@ -23,6 +23,7 @@ it), or a few Monte Carlo standard errors where a chain is compared with an exac
 
 from __future__ import annotations
 
+import json
 import math
 
 import emcee
@@ -34,6 +35,7 @@ from graybox.posterior import SamplerSettings, run_posterior
 from graybox.posterior.diagnostics import (
     AUTOCORR_C,
     autocorr_change_sd,
+    autocorr_creep,
     autocorr_time,
     autocorr_time_sd,
     ess_bulk,
@@ -96,8 +98,9 @@ def test_tau_noise_formula_bounds_emcees_estimator(phi, n_steps):
     would then fail the 2-sd bound more often than 1 in 20) and must not overstate it by
     more than 2x (the bound would then only catch changes beyond 4 real standard
     deviations).  The same for the difference between the estimates on the whole chain
-    and on its first three quarters, the quantity the rule bounds.  200 replicates of 32
-    AR(1) walkers at 111-200 tau."""
+    and on its first three quarters, the quantity the rule bounds; and that difference's
+    mean is the creep the estimator's bias predicts (within three standard errors of the
+    replicates' mean).  200 replicates of 32 AR(1) walkers at 111-200 tau."""
     rng = np.random.default_rng(32)
     walkers, reps = 32, 200
     tau = (1 + phi) / (1 - phi)
@@ -114,6 +117,8 @@ def test_tau_noise_formula_bounds_emcees_estimator(phi, n_steps):
     change = (whole - part) / whole
     ratio_change = np.std(change, ddof=1) / float(autocorr_change_sd(np.array(tau), n_part, n_steps, walkers))
     assert 0.5 < ratio_change < limit, ratio_change
+    creep = float(autocorr_creep(np.array(tau), n_part, n_steps))
+    assert abs(np.mean(change) - creep) < 3 * np.std(change, ddof=1) / math.sqrt(reps), (np.mean(change), creep)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -265,6 +270,19 @@ def test_a_drifting_chain_is_not_converged_a_stationary_one_is():
     moving = check_convergence(as_chain(drift), None, st, always_diagnose=True)
     assert moving.long_enough and np.all(moving.ess_min >= st.min_ess)
     assert not moving.converged
+
+
+def test_a_walker_that_has_not_moved_is_reported_not_a_crash():
+    """A walker stuck at its start (its autocorrelation cannot be estimated): not converged,
+    the reason says why, and the check's record holds no NaN (results.json is strict JSON)."""
+    rng = np.random.default_rng(41)
+    x = ar1_walkers(rng, 0.5, 16, 300)
+    x[3] = 0.5  # exactly representable: the walker's deviations from its mean are exactly 0
+    st = SamplerSettings(progress=False)
+    check = check_convergence(as_chain(x), None, st, always_diagnose=True)
+    assert not check.converged
+    assert any("has not moved" in f for f in check.failed(st))
+    assert "NaN" not in json.dumps(check.to_dict())
 
 
 # ---------------------------------------------------------------------------------------------
