@@ -13,8 +13,9 @@ Order of work per tag (each step a small function below):
    conflicting duplicates (same time, another value) the first recorded is kept, the others
    are counted and one example is named;
 5. on the rows as logged: values that are not numbers (NaN) or infinite, quality flag, valid
-   range (in the tag's own units), stuck runs (measured outputs by default, see quality.py),
-   and the tag's usual interval;
+   range (in the tag's own units), the tag's usual interval, stuck runs (measured outputs by
+   default; "auto" from the usual interval and how often the readings repeat, see
+   quality.py);
 6. report-by-exception tags: held repeats (unmasked rows equal to the row before) dropped;
 7. units into the model's, spikes.
 
@@ -22,8 +23,11 @@ Outputs keep every sample with a mask; inputs lose their masked samples (the las
 value holds).  Input gaps longer than the gap limit (see gaps.py: by default "auto", from
 each tag's usual interval), excluded windows and the spaces between selected windows split
 the record into segments; a segment without a valid observation of every output is dropped
-(and noted).  Every gap over a limit, every stuck run and every clock change is a warning in
-the report (``DataReport.warnings``), which `graybox check` and `graybox fit` print.
+(and noted).  Every gap over a limit, every stuck run, every clock change and every silence
+of an input logged by exception that is long against its rhythm but under its gap limit
+(held, not split: see gaps.py) is a warning in the report (``DataReport.warnings``), which
+`graybox check` and `graybox fit` print; at most ``MAX_WARNED`` of each kind per tag one by
+one, the rest counted (the tag's report lists every one).
 """
 
 from __future__ import annotations
@@ -37,11 +41,12 @@ from typing import Mapping
 
 import numpy as np
 
-from graybox.data.config import ROLE_INPUT, DataSpec, SymbolInfo, TagSpec, parse_data_table
-from graybox.data.gaps import Gap, GapRule, gap_dict, gap_rule, gap_warning, gaps_over
+from graybox.data.config import ROLE_INPUT, STUCK_AUTO, DataSpec, SymbolInfo, TagSpec, parse_data_table
+from graybox.data.gaps import (NO_SILENCE_RULE, Gap, GapRule, SilenceRule, gap_dict, gap_rule, gap_warning, gaps_over,
+                               silence_dict, silence_rule, silence_warning, silences_within)
 from graybox.data.quality import (REASON_INF, REASON_NAN, REASON_NONEXISTENT, REASON_QUALITY, REASON_RANGE,
-                                  REASON_SPIKE, REASON_STUCK, bad_quality, count_first_reasons, held_repeats,
-                                  out_of_range, spikes, stuck_limit, stuck_runs)
+                                  REASON_SPIKE, REASON_STUCK, StuckRule, bad_quality, count_first_reasons,
+                                  held_repeats, out_of_range, repeat_share, spikes, stuck_rule, stuck_runs)
 from graybox.data.readers import QualityVocab, RawTable, Rows, file_sha256, read_table, row_at, row_count, take_rows
 from graybox.data.record import InputSeries, OutputSeries, Record, Segment
 from graybox.data.report import DataReport, SegmentReport, TagReport, duration_text
@@ -89,6 +94,9 @@ class TagData:
     median_s: float | None = None  # median and interquartile range of the intervals as logged
     spread_s: float | None = None
     stuck_runs: tuple[tuple[int, int, int], ...] = ()  # (first ns, last ns, rows) of each stuck run
+    stuck_rule: StuckRule | None = None  # the stuck rule that applies
+    silence_rule: SilenceRule = NO_SILENCE_RULE  # which silences under the gap limit are reported
+    silences: tuple[Gap, ...] = ()  # those silences (held, not split)
 
     @property
     def usable_rows(self) -> np.ndarray:
@@ -282,12 +290,13 @@ def _out_of_order(t: np.ndarray, chunks: list[Chunk], idx: np.ndarray | None, fi
                f"{_source(chunks, ra, files)} ({iso(int(t[pos - 1]))})")
 
 
-def _interval_stats(t: np.ndarray) -> tuple[float | None, float | None]:
-    """Median and interquartile range (s) of a tag's intervals as logged; None below two rows."""
+def _interval_stats(t: np.ndarray) -> tuple[float | None, float | None, float | None]:
+    """Lower quartile, median and upper quartile (s) of a tag's intervals as logged; None
+    below two rows."""
     if t.size < 2:
-        return None, None
+        return None, None, None
     q25, q50, q75 = quartiles(np.diff(t)) / 1e9
-    return float(q50), float(q75 - q25)
+    return float(q25), float(q50), float(q75)
 
 
 def _thin_repeats(t: np.ndarray, v: np.ndarray, masked: np.ndarray, limit_s: float
@@ -310,11 +319,11 @@ def _non_numbers(v: np.ndarray, any_nan: bool) -> tuple[np.ndarray | None, np.nd
     return (np.isnan(v) if any_nan else None), (infinite if infinite.any() else None)
 
 
-def _stuck_rows(t: np.ndarray, v: np.ndarray, usable: np.ndarray, tg: TagSpec, spec: DataSpec
+def _stuck_rows(t: np.ndarray, v: np.ndarray, usable: np.ndarray, tg: TagSpec, rule: StuckRule
                 ) -> tuple[np.ndarray, tuple[tuple[int, int, int], ...]]:
-    """The rows in stuck runs (the tag's stuck rule, see quality.stuck_limit) and each run's
+    """The rows in stuck runs (the tag's stuck rule, see quality.stuck_rule) and each run's
     (first ns, last ns, rows)."""
-    runs = stuck_runs(t, v, usable, tg.deadband, stuck_limit(tg.role, tg.stuck_after, spec.stuck_after))
+    runs = stuck_runs(t, v, usable, tg.deadband, rule.limit_s)
     st = np.zeros(t.size, bool)
     for a, b in runs:
         st[a:b + 1] = usable[a:b + 1]
@@ -364,7 +373,8 @@ def process_tag(tg: TagSpec, chunks: list[Chunk], spec: DataSpec, conv: Conversi
         q = q[order] if q is not None else None
     # judged on the rows as logged, before any held repeat is thinned
     span = (int(t[0]), int(t[-1])) if t.size else (None, None)
-    median_s, spread_s = _interval_stats(t)
+    lower_s, median_s, upper_s = _interval_stats(t)
+    spread_s = upper_s - lower_s if median_s is not None else None
     rule = gap_rule(tg, spec, median_s)
     bad_range = out_of_range(v, tg.valid)
     bq = bad_quality(q, list(quality_texts), spec.good_quality)
@@ -373,7 +383,8 @@ def process_tag(tg: TagSpec, chunks: list[Chunk], spec: DataSpec, conv: Conversi
     for m in (bq, not_number, infinite):
         if m is not None:
             pre_bad = pre_bad | m
-    st, runs_ns = _stuck_rows(t, v, ~pre_bad, tg, spec)
+    stuck = _tag_stuck_rule(tg, spec, v, ~pre_bad, median_s)
+    st, runs_ns = _stuck_rows(t, v, ~pre_bad, tg, stuck)
     mask_stuck = spec.stuck_action == "mask"
     n_stuck = int(st.sum())  # rows as logged, held repeats among them included
     repeats = repeats_in_stuck = 0
@@ -412,13 +423,26 @@ def process_tag(tg: TagSpec, chunks: list[Chunk], spec: DataSpec, conv: Conversi
     masked.update(counts)
     use = ~masked_now
     logged = t_rows[use[owner]] if t_rows is not None else None  # a repeat is usable as its value is
-    gaps = _gaps_over(logged if logged is not None else (t if bool(use.all()) else t[use]), rule.limit_s)
+    rows = logged if logged is not None else (t if bool(use.all()) else t[use])
+    gaps = _gaps_over(rows, rule.limit_s)
+    quiet = silence_rule(tg, rule, lower_s, upper_s)
+    silences = tuple(Gap(int(rows[i]), int(rows[i + 1])) for i in silences_within(rows, quiet, rule))
     stats = dict(files=tuple(dict.fromkeys(str(spec.files[c.file]) for c in chunks)), rows_read=rows_read,
                  blank=blank, masked=masked, flagged=flagged, exact=n_exact, conflict=n_conflict,
                  conflict_example=conflict_text, repeats=repeats, repeats_in_stuck=repeats_in_stuck,
                  outside=outside, before_start=before_start, out_of_order=n_back, out_of_order_example=back_text,
                  span=span)
-    return TagData(tg, t, values, use, st, conv, stats, logged, rule, gaps, median_s, spread_s, runs_ns)
+    return TagData(tg, t, values, use, st, conv, stats, logged, rule, gaps, median_s, spread_s, runs_ns, stuck,
+                   quiet, silences)
+
+
+def _tag_stuck_rule(tg: TagSpec, spec: DataSpec, v: np.ndarray, usable: np.ndarray, median_s: float | None
+                    ) -> StuckRule:
+    """The stuck rule of a tag; its repeat share is counted only when "auto" needs it."""
+    share = None
+    if STUCK_AUTO in (tg.stuck_after, spec.stuck_after) and tg.logging != "exception":
+        share = repeat_share(v, usable, tg.deadband)
+    return stuck_rule(tg.role, tg.logging, tg.stuck_after, spec.stuck_after, median_s, share)
 
 
 def _gaps_over(rows: np.ndarray, limit_s: float) -> tuple[Gap, ...]:
@@ -496,7 +520,7 @@ def _tag_report(td: TagData, spec: DataSpec, start: int | None, end: int | None)
         if gaps:
             longest = max(b - a for a, b in gaps) / 1e9
     limit = rule.limit_s if rule is not None and rule.active else None
-    stuck_s = stuck_limit(td.spec.role, td.spec.stuck_after, spec.stuck_after)
+    stuck = td.stuck_rule
     action = "masked" if spec.stuck_action == "mask" else "flagged, not masked"
     return TagReport(
         symbol=td.spec.symbol, tag=td.spec.tag, role=td.spec.role, files=s["files"], rows_read=s["rows_read"],
@@ -509,30 +533,43 @@ def _tag_report(td: TagData, spec: DataSpec, start: int | None, end: int | None)
         out_of_order=s["out_of_order"], out_of_order_example=s["out_of_order_example"],
         first_valid_utc=iso(first_valid), first_valid_text=describe_instant(first_valid, spec.time, start),
         gap_rule=rule.how if rule is not None else "", gap_list=tuple(gap_dict(g, td.spec, iso) for g in td.gaps),
-        stuck_after_s=stuck_s if np.isfinite(stuck_s) else None,
+        stuck_after_s=stuck.limit_s if stuck is not None and stuck.active else None,
+        stuck_rule=stuck.how if stuck is not None else "",
         stuck_runs=tuple({"start_utc": iso(a), "end_utc": iso(b), "duration_s": (b - a) / 1e9, "rows": n,
                           "action": action} for a, b, n in td.stuck_runs),
-        held_repeats_in_stuck=s["repeats_in_stuck"], logging=td.spec.logging)
+        held_repeats_in_stuck=s["repeats_in_stuck"], logging=td.spec.logging,
+        silence_after_s=td.silence_rule.after_s if td.silence_rule.active else None,
+        silence_rule=td.silence_rule.how, silences=tuple(silence_dict(g, iso) for g in td.silences))
 
 
-MAX_WARNED = 20  # gaps (and stuck runs) of one tag printed one by one; the rest counted in one line
+MAX_WARNED = 20  # gaps (stuck runs, silences) of one tag printed one by one; the rest counted in one line
 
 
 def _tag_warnings(td: TagData, spec: DataSpec) -> list[str]:
-    """What a reader must be told about a tag: every gap over its limit and every stuck run."""
+    """What a reader must be told about a tag: every gap over its limit, every silence long
+    against its rhythm under that limit (inputs logged by exception) and every stuck run."""
     out = [gap_warning(g, td.spec, td.rule, iso_z) for g in td.gaps[:MAX_WARNED]]
     who = f"{td.spec.role} {td.spec.symbol} (tag '{td.spec.tag}')"
     if len(td.gaps) > MAX_WARNED:
         rest = td.gaps[MAX_WARNED:]
         out.append(f"{who}: {len(rest)} more gaps over {duration_text(td.rule.limit_s)} after these, the longest "
                    f"{duration_text(max(g.duration_s for g in rest))} (the data report lists every one: gap_list)")
-    limit = stuck_limit(td.spec.role, td.spec.stuck_after, spec.stuck_after)
+    out += [silence_warning(g, td.spec, td.silence_rule, td.rule, iso_z) for g in td.silences[:MAX_WARNED]]
+    if len(td.silences) > MAX_WARNED:
+        rest = td.silences[MAX_WARNED:]
+        out.append(f"{who}: {len(rest)} more silences over {duration_text(td.silence_rule.after_s)} held (not split) "
+                   f"after these, the longest {duration_text(max(g.duration_s for g in rest))} (the data report lists "
+                   "every one: silences)")
+    limit = td.stuck_rule.limit_s
+    auto = " (auto)" if td.stuck_rule.how.startswith("auto") else ""
     for a, b, n in td.stuck_runs[:MAX_WARNED]:
         what = "masked" if spec.stuck_action == "mask" else "flagged, not masked (stuck_action = \"mask\" masks it)"
         held = (" (logged by exception: a frozen sensor, or a value that held within the deadband)"
                 if td.spec.logging == "exception" else "")
-        out.append(f"{who}: flat within half its deadband ({td.spec.deadband:g}) for {duration_text((b - a) / 1e9)}, "
-                   f"{iso_z(a)} .. {iso_z(b)}, {n} rows, over stuck_after {duration_text(limit)}: a stuck "
+        flat = (f"flat within half its deadband ({td.spec.deadband:g})" if td.spec.deadband
+                else "one value repeated exactly")
+        out.append(f"{who}: {flat} for {duration_text((b - a) / 1e9)}, "
+                   f"{iso_z(a)} .. {iso_z(b)}, {n} rows, over stuck_after {duration_text(limit)}{auto}: a stuck "
                    f"sensor{held}; {what}")
     if len(td.stuck_runs) > MAX_WARNED:
         out.append(f"{who}: {len(td.stuck_runs) - MAX_WARNED} more stuck runs after these (the data report lists "

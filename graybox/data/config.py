@@ -62,13 +62,23 @@ an example::
                                       # with logging = "exception" keep their own max_gap, else the
                                       # longer of 1 h and 10 median intervals ("auto"), since their
                                       # silences may be held values.  "off" here: no limit for any tag
-                                      # that declares none of its own
+                                      # that declares none of its own.  An input logged by exception:
+                                      # every silence longer than the longer of 1 h and the upper quartile
+                                      # of its intervals plus 1.5 interquartile ranges (Tukey's outlier
+                                      # fence), but under its auto gap limit, is warned about (its value
+                                      # is held there; silence alone cannot tell that from an outage; a
+                                      # max_gap the study sets is its own judgement: not warned)
     select = [["2026-01-05T00:00Z", "2026-01-20T00:00Z"]]   # e.g.; keep only these spans (elapsed: numbers)
     exclude = [["2026-01-11T06:00Z", "2026-01-11T18:00Z"]]  # e.g.; drop these (shutdown, cleaning)
     holdout = 0.25                    # e.g.; last fraction (or from an instant) kept for validation
-    stuck_after = "2 h"               # measured outputs: a run of samples flat to within half the
-                                      # deadband this long is a stuck sensor ("off": never); inputs are
-                                      # not judged (a controller holds a setpoint) unless a tag says so
+    stuck_after = "auto"              # measured outputs: a run of samples flat to within half the
+                                      # deadband this long is a stuck sensor; "auto": for a sampled tag
+                                      # the shorter of 2 h and the longer of 10 min and 20 of its median
+                                      # intervals, unless over 1 in 4 of its successive readings repeat
+                                      # (within half the deadband: coarse steps against its noise), then
+                                      # 2 h; 2 h for a tag logged by exception; or a duration, or "off"
+                                      # (never).  Inputs are not judged (a controller holds a setpoint)
+                                      # unless a tag says so
     stuck_action = "flag"             # flag | mask
     [data.spikes]                     # optional robust spike filter (masks)
     window = "30 min"                 # e.g.; centred window of the running median
@@ -97,7 +107,7 @@ an example::
                                       # hold, dropped after the quality, range and stuck judgements)
     quality_column = "TI_101.Q"       # e.g.; wide layout: this tag's quality column
     max_gap = "1 h"                   # e.g.; this tag's own gap limit (a duration, "auto" or "off")
-    stuck_after = "30 min"            # e.g.; this tag's own stuck rule (a duration or "off"); default:
+    stuck_after = "30 min"            # e.g.; this tag's own stuck rule (a duration, "auto" or "off"); default:
                                       # the experiment's for an output, "off" for an input
     atmosphere = "14.5 psi"           # e.g.; per-tag overrides of the physical references
 """
@@ -137,7 +147,7 @@ DATA_DEFAULTS = {
     "layout": "wide", "delimiter": ",", "decimal": ".", "encoding": "utf-8", "header_row": 1,
     "skip_after_header": 0, "no_value": list(DEFAULT_NO_VALUE), "time_format": "iso", "clock": "24h",
     "tag_column": "tag", "value_column": "value", "good_quality": ["good"], "max_gap": "auto",
-    "stuck_after": "2 h", "stuck_action": "flag",
+    "stuck_after": "auto", "stuck_action": "flag",
 }
 SPIKE_DEFAULTS = {"threshold": 6}
 INFORMATIVE_DEFAULTS = {"window": "1 day", "step": "6 h", "top": 5}
@@ -148,6 +158,20 @@ OFF_WORDS = ("off", "none", "never")
 AUTO_GAP_FLOOR_S = 900.0  # "auto" gap limit of a sampled tag: the longer of 15 min and ...
 AUTO_GAP_INTERVALS = 10.0  # ... ten of the tag's median sample intervals (as logged)
 AUTO_GAP_EXCEPTION_FLOOR_S = 3600.0  # a tag logged by exception: the longer of 1 h and ten intervals
+# A silence of an input logged by exception is warned about (held, not split) when it is under
+# the gap limit but longer than the longer of SILENCE_FLOOR_S and the tag's upper quartile of
+# intervals plus SILENCE_FENCE_IQR interquartile ranges (Tukey's outlier fence, see gaps.py).
+SILENCE_FLOOR_S = 3600.0
+SILENCE_FENCE_IQR = 1.5
+# stuck_after = "auto" (see quality.py): a sampled tag is stuck after the shorter of
+# AUTO_STUCK_CAP_S and the longer of AUTO_STUCK_FLOOR_S and AUTO_STUCK_INTERVALS median
+# intervals, while at most AUTO_STUCK_REPEAT_SHARE of its successive readings repeat (within
+# half its deadband); otherwise, and for a tag logged by exception, after AUTO_STUCK_CAP_S.
+STUCK_AUTO = GAP_AUTO  # the same word, "auto"
+AUTO_STUCK_CAP_S = 7200.0
+AUTO_STUCK_FLOOR_S = 600.0
+AUTO_STUCK_INTERVALS = 20.0
+AUTO_STUCK_REPEAT_SHARE = 0.25
 
 DATA_KEYS = (
     "files", "format", "layout", "delimiter", "decimal", "encoding", "header_row", "skip_after_header", "no_value",
@@ -195,7 +219,7 @@ class TagSpec:
     max_gap: float | str | None  # seconds; "auto" (GAP_AUTO); inf = "off"; None = the experiment's
     where: str  # location of this tag's units (or table), for unit messages
     where_tag: str = ""  # location of the tag name, for messages about the tag itself
-    stuck_after: float | None = None  # seconds; inf = "off"; None = the experiment's (outputs), off (inputs)
+    stuck_after: float | str | None = None  # s; "auto"; inf = "off"; None = the experiment's (outputs), off (inputs)
 
 
 @dataclass(frozen=True)
@@ -252,7 +276,7 @@ class DataSpec:
     select: tuple[tuple[int, int], ...]  # UTC ns, half-open [start, end)
     exclude: tuple[tuple[int, int], ...]
     holdout: float | datetime | None
-    stuck_after: float  # seconds, for measured outputs; inf = "off"
+    stuck_after: float | str  # seconds, for measured outputs; "auto" (STUCK_AUTO, see AUTO_STUCK_*); inf = "off"
     stuck_action: str
     spikes: SpikeSpec | None
     search: SearchSpec | None
@@ -442,7 +466,7 @@ def _tag(t: Table, symbol: str, info: SymbolInfo, defaults: dict) -> TagSpec:
     logging = sub.string("logging", TAG_DEFAULTS["logging"], choices=LOGGING)
     quality = sub.string("quality_column", None) if "quality_column" in sub else None
     max_gap = _duration_or_off(sub, "max_gap", auto=True)
-    stuck_after = _duration_or_off(sub, "stuck_after")
+    stuck_after = _duration_or_off(sub, "stuck_after", auto=True)
     units = TagUnits(
         units=units_text, temperature=temperature, pressure=pressure, flow_basis=basis, span=span,
         span_units=sub.string("span_units", None) if "span_units" in sub else None,
@@ -525,7 +549,8 @@ def parse_data_table(table: dict, name: str, *, symbols: Mapping[str, SymbolInfo
     exclude = _windows(t, "exclude", tz, unit_s)
     holdout = _holdout(t, tz, unit_s is not None)
     start = _start(t, time_column, tz, unit_s)
-    stuck_after = _duration_or_off(t, "stuck_after") if "stuck_after" in t else default_duration("stuck_after")
+    stuck_after = (_duration_or_off(t, "stuck_after", auto=True) if "stuck_after" in t
+                   else default_duration("stuck_after"))
     stuck_action = t.string("stuck_action", DATA_DEFAULTS["stuck_action"], choices=STUCK_ACTIONS)
     spikes = None
     if "spikes" in t:
@@ -566,7 +591,7 @@ def parse_data_table(table: dict, name: str, *, symbols: Mapping[str, SymbolInfo
                        tag_column, value_column, quality_column)
     time = TimeSpec(time_column, tfmt, tz, date_order, clock, time_units, unit_s or 1.0)
     return DataSpec(name, where, files, read, time, good_set, tags,
-                    max_gap, select, exclude, holdout, float(stuck_after), stuck_action, spikes, search, start)
+                    max_gap, select, exclude, holdout, stuck_after, stuck_action, spikes, search, start)
 
 
 def _time_units(t: Table, tfmt: str) -> tuple[str | None, float | None]:

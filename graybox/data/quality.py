@@ -14,16 +14,40 @@ itself is judged stuck, before any repeat is dropped.  The spike filter runs on 
 thinned samples (a held spike would otherwise look like a plateau).
 
 Stuck runs are judged on measured outputs by default: an input held at a setpoint by a
-controller is not a frozen sensor.  A tag's own ``stuck_after`` (a duration or "off")
-overrides the default, for an input too (:func:`stuck_limit`).
+controller is not a frozen sensor.  A tag's own ``stuck_after`` (a duration, "auto" or
+"off") overrides the default, for an input too (:func:`stuck_rule`).
+
+``stuck_after = "auto"`` (the default) rests on one observation: a live sensor sampled
+periodically moves from sample to sample (noise), so an exact repeat of a noisy reading is
+rare, and twenty in a row are next to impossible.  For a sampled tag it is the shorter of
+2 h and the longer of 10 min and 20 of its median intervals (30 s sampling: 10 min, 20
+readings).  That premise is checked on the tag itself: its repeat share, the share of its
+successive usable readings within half its deadband of the one before (equal, for a zero
+deadband).  With at most 1 in 4 repeating, a run of 20 repeats starts by chance at a given
+reading with a probability of the order of (1/4)**20 = 9e-13 if repeats were independent;
+for white noise about a steady value, quantised at the step that repeats 1 in 4 (0.917
+standard deviations), 21 readings in one step have a probability of 3.3e-10 (exact with
+scipy, tests/data/test_stuck_auto.py): below 1e-3 false runs in a year of 30 s readings.
+A tag quantised coarsely against its noise (a step of 2 standard deviations repeats 1 in 2,
+and 21 readings in one step come at 3.3e-4 per reading), or declared with a deadband its
+readings seldom leave, repeats legitimately: it keeps the fixed 2 h.  So does a tag logged by exception (a value
+that holds is no news there), and a tag with fewer than two rows.  The constants are
+``AUTO_STUCK_*`` in :mod:`graybox.data.config`.  The share counts every usable reading, a
+frozen stretch included: a freeze covering over a quarter of a tag's readings falls back to
+2 h too.
 """
 
 from __future__ import annotations
 
+import math
+from dataclasses import dataclass
+
 import numpy as np
 import pandas as pd
 
-from graybox.data.config import ROLE_OUTPUT
+from graybox.data.config import (AUTO_STUCK_CAP_S, AUTO_STUCK_FLOOR_S, AUTO_STUCK_INTERVALS, AUTO_STUCK_REPEAT_SHARE,
+                                 ROLE_OUTPUT, STUCK_AUTO)
+from graybox.data.report import duration_text as _dur
 
 REASON_NONEXISTENT = "nonexistent time (clocks went forward)"
 REASON_NAN = "not a number"
@@ -71,12 +95,59 @@ def held_repeats(values: np.ndarray, masked: np.ndarray | None = None) -> np.nda
     return out
 
 
-def stuck_limit(role: str, own: float | None, experiment: float) -> float:
-    """The stuck duration (seconds; inf: not judged) of a tag: its own ``stuck_after`` when
-    given, else the experiment's for a measured output and none for an input."""
+@dataclass(frozen=True)
+class StuckRule:
+    """The stuck duration of one tag: ``limit_s`` (inf: not judged) and how it was set."""
+
+    limit_s: float
+    how: str
+
+    @property
+    def active(self) -> bool:
+        return math.isfinite(self.limit_s)
+
+
+def repeat_share(values: np.ndarray, usable: np.ndarray, deadband: float) -> float | None:
+    """The share of successive usable readings that lie within half the ``deadband`` of the
+    usable reading before them (are equal to it, for a zero deadband); None below two."""
+    v = values if bool(usable.all()) else values[usable]
+    if v.size < 2:
+        return None
+    return float(np.count_nonzero(np.abs(np.diff(v)) <= 0.5 * deadband)) / (v.size - 1)
+
+
+def auto_stuck(logging: str, median_s: float | None, share: float | None) -> StuckRule:
+    """``stuck_after = "auto"`` for a tag logged as ``logging`` with median interval
+    ``median_s`` (as logged) and :func:`repeat_share` ``share`` (see the module docstring)."""
+    cap = f"auto, {_dur(AUTO_STUCK_CAP_S)}"
+    if logging == "exception":
+        return StuckRule(AUTO_STUCK_CAP_S, f"{cap} for a tag logged by exception")
+    if not median_s or share is None:
+        return StuckRule(AUTO_STUCK_CAP_S, f"{cap} (no interval: a single row)")
+    if share > AUTO_STUCK_REPEAT_SHARE:
+        return StuckRule(AUTO_STUCK_CAP_S, f"{cap}: {100 * share:.3g}% of its successive readings repeat (over "
+                                           f"{100 * AUTO_STUCK_REPEAT_SHARE:g}%: coarse steps against its noise)")
+    limit = min(AUTO_STUCK_CAP_S, max(AUTO_STUCK_FLOOR_S, AUTO_STUCK_INTERVALS * median_s))
+    return StuckRule(limit, f"auto, the shorter of {_dur(AUTO_STUCK_CAP_S)} and the longer of "
+                            f"{_dur(AUTO_STUCK_FLOOR_S)} and {AUTO_STUCK_INTERVALS:g} x the median interval "
+                            f"({_dur(median_s)}); {100 * share:.2g}% of its successive readings repeat")
+
+
+def stuck_rule(role: str, logging: str, own: float | str | None, experiment: float | str,
+               median_s: float | None = None, share: float | None = None) -> StuckRule:
+    """The stuck rule of a tag: its own ``stuck_after`` when given, else the experiment's for
+    a measured output and none for an input; "auto" resolved by :func:`auto_stuck`."""
     if own is not None:
-        return float(own)
-    return float(experiment) if role == ROLE_OUTPUT else float("inf")
+        setting, origin = own, "the tag's stuck_after"
+    elif role == ROLE_OUTPUT:
+        setting, origin = experiment, "the experiment's stuck_after"
+    else:
+        return StuckRule(math.inf, "an input, not judged unless its tag sets stuck_after")
+    if setting == STUCK_AUTO:
+        return auto_stuck(logging, median_s, share)
+    if math.isinf(float(setting)):
+        return StuckRule(math.inf, f"{origin} = \"off\"")
+    return StuckRule(float(setting), origin)
 
 
 def _half_medians(t_ns: np.ndarray, v: np.ndarray, half_s: float) -> tuple[np.ndarray, np.ndarray]:

@@ -43,6 +43,10 @@ class TagReport:
     stuck_runs: tuple[dict, ...] = ()  # every stuck run: start_utc, end_utc, duration_s, rows, action
     held_repeats_in_stuck: int = 0  # of held_repeats_dropped, those inside stuck runs (flagged, not masked)
     logging: str = "sampled"
+    stuck_rule: str = ""  # how stuck_after_s was set ("auto, ...", "the tag's stuck_after", ...)
+    silence_after_s: float | None = None  # inputs logged by exception: silences longer are reported; None = none
+    silence_rule: str = ""  # how silence_after_s was set
+    silences: tuple[dict, ...] = ()  # each silence over it, under the gap limit: start_utc, end_utc, duration_s, action
 
     @property
     def masked_total(self) -> int:
@@ -74,7 +78,7 @@ class DataReport:
     windows: tuple[Any, ...] = field(default=())  # informative windows (WindowScore), when ranked
     start_from: str = ""  # what set start_utc (the experiment's start): declared, first stamp, select window
     start_text: str = ""  # the start for a reader
-    warnings: tuple[str, ...] = ()  # what a reader must know: clock changes, long gaps, stuck runs
+    warnings: tuple[str, ...] = ()  # what a reader must know: clock changes, long gaps, long silences, stuck runs
     clock_changes: tuple[dict, ...] = ()  # each clock change met in local stamps, and how it was resolved
 
     @property
@@ -149,7 +153,16 @@ class DataReport:
             if t.gap_rule:
                 details.append(f"gap limit {duration_text(t.gap_limit_s)} ({t.gap_rule})" if t.gap_limit_s
                                else f"no gap limit ({t.gap_rule})")
-            details.append(f"stuck after {duration_text(t.stuck_after_s)}" if t.stuck_after_s else "stuck: not judged")
+            if t.silences:
+                details.append(f"{len(t.silences)} silence{'s' if len(t.silences) != 1 else ''} over "
+                               f"{duration_text(t.silence_after_s)} held, not split (longest "
+                               f"{duration_text(max(s['duration_s'] for s in t.silences))})")
+            if t.silence_rule:
+                details.append(f"silence rule {duration_text(t.silence_after_s)} ({t.silence_rule})"
+                               if t.silence_after_s else f"no silence rule ({t.silence_rule})")
+            rule = f" ({t.stuck_rule})" if t.stuck_rule.startswith("auto") else ""
+            details.append(f"stuck after {duration_text(t.stuck_after_s)}{rule}" if t.stuck_after_s
+                           else "stuck: not judged")
             lines.append(f"  {t.symbol} ({t.tag}): " + "; ".join(d for d in details if d))
         lines.append("")
         lines.append(f"  segments: {len(self.segments)}")

@@ -148,7 +148,7 @@ def test_bad_gap_settings_are_located_errors(tmp_path):
     write(tmp_path, "w.csv", "time,TI_101,QI_7,FI_3\n2026-01-01T00:00:00Z,1,1,1\n")
     base = {"files": ["w.csv"], "time_column": "time", "tags": {"T": "TI_101", "Q": "QI_7", "F": "FI_3"}}
     for key, value, where in (("max_gap", "soon", "[data] key 'max_gap'"), ("max_gap", True, "key 'max_gap'"),
-                              ("stuck_after", "auto", "key 'stuck_after'")):
+                              ("stuck_after", "soon", "key 'stuck_after'")):  # "auto" is a stuck rule now
         with pytest.raises(ConfigError) as exc:
             load(tmp_path, {**base, key: value})
         assert where in str(exc.value) and "off" in (exc.value.hint or "")
