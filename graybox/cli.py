@@ -1,4 +1,5 @@
-"""Command line: parses arguments and calls the job functions in graybox.workflow.
+"""Command line: parses arguments and calls the job functions in graybox.workflow (the
+public API of graybox.api with a study file and printing).
 
 Exit codes: 0 success; 2 user error (config, model, data, settings), printed as one
 ``error: ...`` message without a traceback; 1 internal failure (a bug: please report it).

@@ -61,35 +61,65 @@ class NoiseSpec:
 
 
 @dataclass(frozen=True)
-class Study:
-    """A validated study file."""
+class StudySettings:
+    """Everything a study says apart from its data, validated once: the model, the noise,
+    the estimate, sampler and prior settings, and each experiment's located data table
+    (handed to the data layer, which validates it into a ``DataSpec``: see
+    :class:`graybox.study.Study`, the study with its data specs, the one a fit takes).
 
-    path: Path
-    raw: dict
+    The study's seed is stored once, in ``fit.seed`` (:attr:`seed`); ``sampler.seed`` is
+    the ``[sampling] seed`` (or ``--seed``) only when one was given (:attr:`sampling_seed`)."""
+
+    path: Path | None  # the study file; None for a study written as Python values
+    folder: Path  # where relative paths (data files) resolve: the study file's folder
+    raw: dict  # the study as read (with overrides applied)
     name: str
-    seed: int
     dataset: str | None
     spec: ModelSpec
-    experiments: dict[str, Table]  # name -> raw data table (validated by the data layer on load)
+    data_tables: dict[str, Table]  # experiment -> its located data table, validated by the data layer
     noise: dict[str, NoiseSpec]
-    fit: FitSettings
+    fit: FitSettings  # fit.seed is the study's seed
     engine: str
     tol: Tolerances
-    sampling: Table  # the raw [sampling] table
-    # parsed once by load_study, used by the fit as they are:
     sampler: SamplerSettings = SamplerSettings()  # enabled: whether this run samples
     priors: dict[str, Prior] = field(default_factory=dict)  # free parameter -> prior (study file alone)
     noise_models: tuple[NoiseModel, ...] = ()  # one per measured output, validated
+    overrides: dict = field(default_factory=dict)  # the study-file keys a caller replaced (fleet batches)
+
+    @property
+    def seed(self) -> int:
+        """The study's seed (``[study] seed``, or the caller's replacement)."""
+        return self.fit.seed
+
+    @property
+    def sampling_seed(self) -> int:
+        """The seed the posterior stage uses: ``[sampling] seed`` (or ``--seed``) if given,
+        else the study's seed."""
+        return int(self.sampler.seed) if self.sampler.seed is not None else self.seed
 
     @property
     def base_dir(self) -> Path:
-        return self.path.parent
+        """Where relative paths of the study resolve."""
+        return self.folder
+
+    @property
+    def sampling(self) -> Table:
+        """The ``[sampling]`` table as written (located), for tools that read it again with
+        other options; a run uses :attr:`sampler`, parsed from it once."""
+        return Table(self.raw.get("sampling", {}), ("sampling",), self.path)
+
+    def with_seed(self, seed: int | None) -> "StudySettings":
+        """The same settings with the study's seed replaced (None: unchanged)."""
+        if seed is None:
+            return self
+        return replace(self, fit=replace(self.fit, seed=int(seed)))
 
 
-def load_study(path: str | Path, overrides: dict | None = None, *, sample: bool | None = None,
-               sampler_options: dict | None = None) -> Study:
+def read_study(path: str | Path, overrides: dict | None = None, *, sample: bool | None = None,
+               sampler_options: dict | None = None) -> StudySettings:
     """Read and check a study file (model, estimate, noise, sampler and prior checks); no
-    data is read yet.
+    data is read and the data tables are not validated yet (``graybox.study.load_study``
+    does both steps).
 
     ``overrides`` replaces keys of top-level tables before validation, e.g.
     ``{"data": {"files": [...]}}`` (used by fleet batches to point one study at many units).
@@ -97,6 +127,25 @@ def load_study(path: str | Path, overrides: dict | None = None, *, sample: bool 
     ``sampler_options`` replace ``[sampling]`` keys (command-line options, None = not given)."""
     path = Path(path).resolve()
     raw = apply_overrides(load_toml(path), overrides or {}, path)
+    settings = settings_from_raw(raw, path=path, folder=path.parent, sample=sample, sampler_options=sampler_options)
+    return replace(settings, overrides=dict(overrides or {}))
+
+
+def load_study(path: str | Path, overrides: dict | None = None, *, sample: bool | None = None,
+               sampler_options: dict | None = None) -> StudySettings:
+    """The older name of :func:`read_study` (the study's settings without its data specs);
+    ``graybox.load_study`` gives the whole :class:`graybox.study.Study`."""
+    return read_study(path, overrides, sample=sample, sampler_options=sampler_options)
+
+
+def settings_from_raw(raw: dict, *, path: Path | None, folder: Path, sample: bool | None = None,
+                      sampler_options: dict | None = None) -> StudySettings:
+    """Check a study given as its tables (as a study file would hold them: ``{"study":
+    {...}, "model": {...}, ...}``); ``path`` is the file they came from (None: Python
+    values; errors are then located by table and key only), ``folder`` where relative paths
+    resolve.  The checks are those of :func:`read_study`, in the same order."""
+    if not isinstance(raw, dict):
+        raise ConfigError(f"a study is a table of tables, got {type(raw).__name__}", where=str(path or "<config>"))
     top = Table(raw, (), path)
     top.check_keys(TOP_KEYS)
     st = top.sub("study")
@@ -127,19 +176,18 @@ def load_study(path: str | Path, overrides: dict | None = None, *, sample: bool 
         atol=est.number("atol", 1e-10, positive=True),
         method=est.string("integrator", "auto", METHODS),
     )
-    return Study(
+    return StudySettings(
         path=path,
+        folder=Path(folder),
         raw=raw,
         name=st.string("name", spec.name),
-        seed=seed,
         dataset=st.string("dataset", None) if "dataset" in st else None,
         spec=spec,
-        experiments=experiments,
+        data_tables=experiments,
         noise=noise,
         fit=fit,
         engine=est.string("engine", "auto", ENGINES),
         tol=tol,
-        sampling=top.sub("sampling"),
         sampler=sampler,
         priors=priors,
         noise_models=models,

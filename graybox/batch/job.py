@@ -5,8 +5,10 @@ that hangs or overruns is killed without taking its worker down.  One numba / BL
 per job: fleets parallelise over jobs.
 
 A job spec is JSON: ``{"job", "study", "overrides", "out", "seed", "sample", "batch"}``.
-The process writes the run folder ``out`` (atomically, through graybox.workflow.fit_study)
-and exits 0, or 2 on a user error (its message on stderr), or 1 on a bug.
+The process fits the study through the public API (:func:`graybox.fit`, then the
+posterior when the study samples), writes the run folder ``out`` atomically
+(:func:`graybox.write_run`) and exits 0, or 2 on a user error (its message on stderr), or 1
+on a bug.
 """
 
 from __future__ import annotations
@@ -25,6 +27,7 @@ SINGLE_THREAD_ENV = {
 
 
 def job_environment() -> dict[str, str]:
+    """This process's environment with one numba / BLAS thread and a file-only plot backend."""
     env = dict(os.environ)
     env.update(SINGLE_THREAD_ENV)
     env.setdefault("MPLBACKEND", "Agg")
@@ -32,13 +35,20 @@ def job_environment() -> dict[str, str]:
 
 
 def run_spec(spec: dict) -> None:
-    from graybox.workflow import fit_study
+    """Fit one job's study (its overrides and seed applied) and write its run folder."""
+    from graybox.api import fit, write_run
+    from graybox.stages import RunClock
+    from graybox.study import load_study
 
-    fit_study(spec["study"], spec["out"], force=True, echo=lambda _msg: None, sample=spec.get("sample"),
-              overrides=spec.get("overrides") or {}, seed=spec.get("seed"), run_info={"batch": spec.get("batch", {})})
+    clock = RunClock.now()
+    study = load_study(spec["study"], spec.get("overrides") or {}, sample=spec.get("sample")).with_seed(spec.get("seed"))
+    result = fit(study, clock=clock)
+    final = result.sample() if study.sampler.enabled else result
+    write_run(spec["out"], final, force=True, run_info={"batch": spec.get("batch", {})})
 
 
 def main(argv: list[str] | None = None) -> int:
+    """Run the job spec named by ``argv[0]``; the exit code says how it went."""
     argv = sys.argv[1:] if argv is None else argv
     from graybox.errors import EXIT_INTERNAL, EXIT_OK, EXIT_USER, GrayboxError
 

@@ -34,6 +34,8 @@ from graybox.errors import DataError
 
 DEFAULT_RIDGE = 1e-9
 MOVE_SHARE = 0.05
+DEFAULT_TOP = 5  # the best five (as the [informative] table's documented default)
+SHORT_RECORD_WINDOWS = 2.0  # a record shorter than this many default windows gets windows of half its span
 
 SensitivityFn = Callable[[Record], Mapping[str, np.ndarray]]
 
@@ -166,6 +168,41 @@ def rank_windows(record: Record, sensitivity_fn: SensitivityFn, *, window: float
             break
     return [WindowScore(i + 1, record.start_utc + timedelta(seconds=a), record.start_utc + timedelta(seconds=b),
                         a, b, ld, n, _moves(record, a, b)) for i, (ld, a, b, n) in enumerate(chosen)]
+
+
+@dataclass(frozen=True)
+class WindowPlan:
+    """How a record's candidate windows are laid out and ranked."""
+
+    window: float  # seconds
+    step: float  # seconds between candidate starts
+    top: int
+    noise: Mapping[str, float] | None = None  # output -> noise level weighting it (None: 1 for each)
+
+
+def window_plan(search, record: Record) -> WindowPlan:
+    """The one rule for the informative-window settings of a record, used by both
+    `graybox check` and `graybox fit`: the experiment's ``[informative]`` table (``search``,
+    a ``graybox.data.config.SearchSpec``) if it has one, with that table's documented
+    defaults for the keys it leaves out; without one, windows of the table's default length
+    (1 day), or of half the record when it is shorter than two of them (a short record still
+    has windows to compare), a quarter window apart, the best ``DEFAULT_TOP``, every output
+    weighted alike."""
+    if search is not None:
+        return WindowPlan(float(search.window), float(search.step), int(search.top), dict(search.noise) or None)
+    from graybox.data.config import INFORMATIVE_DEFAULTS, default_duration
+
+    full = float(default_duration("window", INFORMATIVE_DEFAULTS))
+    lo, hi = record.time_span()
+    span = hi - lo
+    window = full if span >= SHORT_RECORD_WINDOWS * full or span <= 0 else span / SHORT_RECORD_WINDOWS
+    return WindowPlan(window, window / 4.0, DEFAULT_TOP, None)
+
+
+def rank_record(record: Record, sensitivity_fn: SensitivityFn, search=None) -> list[WindowScore]:
+    """:func:`rank_windows` of ``record`` laid out by :func:`window_plan`."""
+    plan = window_plan(search, record)
+    return rank_windows(record, sensitivity_fn, window=plan.window, step=plan.step, top=plan.top, noise=plan.noise)
 
 
 def windows_to_frame(scores: list[WindowScore]):
