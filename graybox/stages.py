@@ -72,8 +72,8 @@ class Prepared:
 
 # -- data and problem ------------------------------------------------------------------------------
 def load_data(spec: DataSpec):
-    """An experiment's data read from its spec: the data layer's assembly (record, report,
-    problems that stop a fit)."""
+    """An experiment's data read from its spec: the data layer's assembly (record or None,
+    report, the problems that stop a fit, none raised)."""
     from graybox.data.assemble import assemble
 
     return assemble(spec)
@@ -91,16 +91,15 @@ def fit_part(record: Record, spec: DataSpec) -> tuple[Record, Record | None]:
 def load_records(study: Study) -> tuple[list[Record], dict[str, DataReport], list[Record]]:
     """Fit records, data reports and held-out validation records, per experiment; the first
     problem that stops a fit (every sample of an output masked, no usable segment) is raised."""
+    from graybox.data.assemble import load_spec
+
     records, reports, validation = [], {}, []
     for name, spec in study.experiments.items():
-        result = load_data(spec)
-        if result.problems:
-            raise result.problems[0]
-        rec, held = fit_part(result.record, spec)
+        record, reports[name] = load_spec(spec)
+        rec, held = fit_part(record, spec)
         if held is not None:
             validation.append(held)
         records.append(rec)
-        reports[name] = result.report
     return records, reports, validation
 
 

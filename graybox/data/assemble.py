@@ -480,6 +480,8 @@ def segment_spans(start: int, end: int, breaks: list[tuple[int, int]]) -> list[t
 # -- the whole experiment --------------------------------------------------------------------
 @dataclass(frozen=True)
 class Assembly:
+    """What :func:`assemble` made of one experiment's data."""
+
     spec: DataSpec
     record: Record | None
     report: DataReport
@@ -597,6 +599,8 @@ def _check_select(spec: DataSpec, tags: list[TagData], raw_spans: list[tuple[int
 
 
 def assemble(spec: DataSpec) -> Assembly:
+    """Everything the data layer makes of a data spec's files: the record (None when a
+    problem stops a fit), the report, and those problems (none raised here)."""
     with ThreadPoolExecutor(max_workers=1) as hasher:
         # the files are hashed on a second thread (hashlib releases the GIL) while this one
         # reads, stamps and judges their samples; the digests are collected at the end
@@ -712,15 +716,10 @@ def _record(spec: DataSpec, tags: list[TagData], start: int, segments, sources, 
 
 
 # -- public ------------------------------------------------------------------------------------
-def load_experiment(table: dict, name: str, *, symbols: Mapping[str, SymbolInfo], base_dir: Path,
-                    where: str, dynamic: bool = False) -> tuple[Record, DataReport]:
-    """Read, check and convert one experiment's data into a Record in model units.
-
-    ``dynamic``: the model has states, so the table must name its time column (a static
-    model may take the rows in order).  Raises ConfigError for mistakes in the table,
-    DataError for problems with the data (each located at the file and line, column or tag)."""
-    spec = parse_data_table(table, name, symbols=symbols, base_dir=Path(base_dir), where=where)
-    require_time_axis(spec, dynamic)
+def load_spec(spec: DataSpec) -> tuple[Record, DataReport]:
+    """Read, check and convert the data a validated data spec names into a Record in model
+    units; the first problem that stops a fit is raised (each located at the file and line,
+    column or tag)."""
     result = assemble(spec)
     if result.problems:
         raise result.problems[0]
@@ -728,28 +727,41 @@ def load_experiment(table: dict, name: str, *, symbols: Mapping[str, SymbolInfo]
     return result.record, result.report
 
 
-def check_experiment(table: dict, name: str, *, symbols: Mapping[str, SymbolInfo], base_dir: Path,
-                     where: str, sensitivity_fn=None, dynamic: bool = False) -> DataReport:
-    """Read and validate without fitting.  Problems that stop a fit (an output with every
-    sample masked, no usable segment) are listed in ``report.problems`` (``report.ok`` is
-    False); errors that stop reading are raised.  With ``sensitivity_fn`` (see
-    :func:`graybox.data.windows.rank_windows`) and an ``[informative]`` table or its defaults,
-    the informative windows are ranked too.  ``dynamic``: as for :func:`load_experiment`."""
-    spec = parse_data_table(table, name, symbols=symbols, base_dir=Path(base_dir), where=where)
-    require_time_axis(spec, dynamic)
+def check_spec(spec: DataSpec, sensitivity_fn=None) -> DataReport:
+    """Read and validate the data of a data spec without fitting.  Problems that stop a fit
+    (an output with every sample masked, no usable segment) are listed in
+    ``report.problems`` (``report.ok`` is False); errors that stop reading are raised.  With
+    ``sensitivity_fn`` (see :func:`graybox.data.windows.rank_windows`) the informative
+    windows of the record are ranked too, laid out by the one rule for their settings
+    (:func:`graybox.data.windows.window_plan`: the ``[informative]`` table or its defaults)."""
     result = assemble(spec)
     report = result.report
     if sensitivity_fn is not None and result.record is not None:
-        from graybox.data.windows import rank_windows
+        from graybox.data.windows import rank_record
 
-        search = spec.search
-        window = search.window if search else 86400.0
-        step = search.step if search else window / 4
-        top = search.top if search else 5
-        noise = dict(search.noise) if search else None
-        report = report.with_windows(rank_windows(result.record, sensitivity_fn, window=window, step=step, top=top,
-                                                  noise=noise))
+        report = report.with_windows(rank_record(result.record, sensitivity_fn, spec.search))
     return report
+
+
+def load_experiment(table: dict, name: str, *, symbols: Mapping[str, SymbolInfo], base_dir: Path,
+                    where: str, dynamic: bool = False) -> tuple[Record, DataReport]:
+    """Validate one experiment's data table and read its data (:func:`load_spec`).
+
+    ``dynamic``: the model has states, so the table must name its time column (a static
+    model may take the rows in order).  Raises ConfigError for mistakes in the table,
+    DataError for problems with the data (each located at the file and line, column or tag)."""
+    spec = parse_data_table(table, name, symbols=symbols, base_dir=Path(base_dir), where=where)
+    require_time_axis(spec, dynamic)
+    return load_spec(spec)
+
+
+def check_experiment(table: dict, name: str, *, symbols: Mapping[str, SymbolInfo], base_dir: Path,
+                     where: str, sensitivity_fn=None, dynamic: bool = False) -> DataReport:
+    """Validate one experiment's data table and check its data without fitting
+    (:func:`check_spec`).  ``dynamic``: as for :func:`load_experiment`."""
+    spec = parse_data_table(table, name, symbols=symbols, base_dir=Path(base_dir), where=where)
+    require_time_axis(spec, dynamic)
+    return check_spec(spec, sensitivity_fn)
 
 
 def data_spec(table: dict, name: str, *, symbols: Mapping[str, SymbolInfo], base_dir: Path, where: str) -> DataSpec:

@@ -8,7 +8,8 @@ an example::
 
     [data]
     files = ["vessel_log.csv"]        # e.g.; paths or glob patterns, relative to the config's folder;
-                                      # several files feed one experiment (per tag, per month)
+                                      # several files feed one experiment (per tag, per month);
+                                      # from Python: pandas DataFrames instead (graybox.data.frames)
     format = "csv"                    # e.g.; csv | parquet | excel; default: from the file ending
     layout = "wide"                   # wide: a time column and a column per tag
                                       # long: a time column, a tag column, a value column
@@ -422,6 +423,12 @@ def _holdout(t: Table, tz: str | None, elapsed: bool = False):
 
 
 def _files(t: Table, base_dir: Path) -> tuple[Path, ...]:
+    """The files the table lists (paths, glob patterns), found; or the DataFrames it lists
+    instead (:mod:`graybox.data.frames`)."""
+    from graybox.data.frames import frame_sources, lists_frames
+
+    if lists_frames(t):
+        return frame_sources(t)
     entries = t.string_list("files")
     if not entries:
         raise t.error("files", "lists no file", hint="files = [\"export.csv\"]")

@@ -24,6 +24,7 @@ import numpy as np
 import pandas as pd
 
 from graybox.data.config import ReadOptions
+from graybox.data.frames import FRAME_WORD, FrameSource, blank_texts, frame_columns
 from graybox.errors import DataError
 
 
@@ -83,6 +84,8 @@ def file_sha256(path: Path) -> str:
     """The file's SHA-256 digest, read in 4 MiB blocks: the digest runs on a second thread,
     and every block hands Python's lock back and forth once (hashlib.file_digest's 256 KiB
     blocks made the thread reading the samples wait for it hundreds of times a file)."""
+    if isinstance(path, FrameSource):
+        return path.sha256()
     h = hashlib.sha256()
     buf = bytearray(_HASH_BLOCK)
     view = memoryview(buf)
@@ -109,9 +112,11 @@ def read_table(path: Path, opts: ReadOptions, time_column: str | None, wanted: d
     (wide layout) or None; tags absent from this file are simply not in the result (several
     files may feed one experiment).  ``text_time``: keep the time column as text.
     ``after_parse()`` is called once the file's text has been parsed into columns."""
-    fmt = file_format(path, opts)
     nan_cells: dict[str, np.ndarray] = {}  # stored NaNs apart from empty cells (Parquet floats only)
-    if fmt == "csv":
+    fmt = None if isinstance(path, FrameSource) else file_format(path, opts)
+    if fmt is None:  # a DataFrame in place of a file (graybox.data.frames)
+        frame, word, numbers, header = _frame_frame(path, opts, time_column, wanted)
+    elif fmt == "csv":
         frame, word, numbers, header = _csv_frame(path, opts, time_column, wanted, text_time)
     elif fmt == "parquet":
         frame, word, numbers, header, nan_cells = _parquet_frame(path, opts, time_column, wanted)
@@ -190,6 +195,14 @@ def _csv_frame(path: Path, opts: ReadOptions, time_column, wanted, text_time):
     frame.columns = [str(c).strip() for c in frame.columns]
     numbers = np.arange(len(frame), dtype=np.int64) + first_data_line
     return frame, "line", numbers, header
+
+
+def _frame_frame(source: FrameSource, opts: ReadOptions, time_column, wanted):
+    """A DataFrame's needed columns, as a file's reader gives them (see graybox.data.frames)."""
+    frame, numbers, header = frame_columns(source, time_column)
+    needed = _needed_columns(header, opts, time_column, wanted)
+    _require_columns(source.label, header, needed, opts, "frame's columns")
+    return blank_texts(frame, needed, opts.no_value), FRAME_WORD, numbers, header
 
 
 def _parquet_frame(path: Path, opts: ReadOptions, time_column, wanted):

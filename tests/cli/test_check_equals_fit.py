@@ -1,6 +1,6 @@
 """`graybox check` refuses what `graybox fit` refuses: a catalogue of bad study files, each run
 through both commands, must give exit code 2 and the same first `error:` line (the study is
-validated once, in graybox.config.load_study, before any data is read).
+validated once, in graybox.study.load_study, before any data is read).
 
 Each expected fragment is the error graybox's own rules call for (priors: the kinds and keys
 documented in graybox/posterior/priors.py; sampler and estimate limits: graybox/posterior/config.py
@@ -123,7 +123,7 @@ def test_check_refuses_what_fit_refuses(case, tmp_path, capsys):
 def test_no_sample_lets_a_uniform_prior_without_bounds_pass_the_study_checks(tmp_path):
     """With sampling off, the finite-bounds rule of the default uniform prior does not apply
     (least squares needs no prior): the study loads, and check says sampling is off."""
-    from graybox.config import load_study
+    from graybox.study import load_study
     from graybox.posterior.priors import KIND_FLAT
 
     study = write_case(tmp_path, UA, '[parameters.UA]\nguess = 10.0\nunits = "W/K"')
@@ -135,7 +135,7 @@ def test_no_sample_lets_a_uniform_prior_without_bounds_pass_the_study_checks(tmp
 def test_check_says_whether_it_checked_for_sampling(tmp_path, capsys):
     """check names the sampling decision it judged the study under (issue 13)."""
     from graybox.workflow import sampling_text
-    from graybox.config import load_study
+    from graybox.study import load_study
 
     study = write_case(tmp_path, SAMPLING, SAMPLING)
     assert sampling_text(load_study(study), None).startswith("sampling: on (the study's [sampling] enabled")

@@ -298,7 +298,7 @@ class Score:
 
 def fit_through_config(problem: NistProblem, start: int, folder: Path):
     """Fit ``problem`` from ``start`` through the study-file path: returns (study, prepared, result)."""
-    from graybox.config import load_study
+    from graybox.study import load_study
     from graybox.estimate.fit import fit
     from graybox.workflow import prepare
 

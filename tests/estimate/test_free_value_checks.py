@@ -18,7 +18,7 @@ import pytest
 import statsmodels.api as sm
 
 from graybox.cli import main
-from graybox.config import load_study
+from graybox.study import load_study
 from graybox.data.record import record_from_arrays
 from graybox.errors import ConfigError, FitError
 from graybox.estimate.fit import FitSettings, fit, wald_interval

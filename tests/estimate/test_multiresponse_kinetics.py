@@ -27,7 +27,7 @@ from scipy.integrate import solve_ivp
 from scipy.linalg import expm_frechet
 from scipy.optimize import least_squares, minimize
 
-from graybox.config import load_study
+from graybox.study import load_study
 from graybox.estimate.fit import fit
 from graybox.workflow import prepare
 

@@ -15,7 +15,8 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from graybox.config import NoiseSpec, load_study
+from graybox.config import NoiseSpec
+from graybox.study import load_study
 from graybox.data.record import record_from_arrays
 from graybox.errors import ConfigError, FitError
 from graybox.estimate.fit import FitSettings, fit

@@ -15,7 +15,7 @@ import numpy as np
 import pytest
 import statsmodels.api as sm
 
-from graybox.config import load_study
+from graybox.study import load_study
 from graybox.estimate.fit import fit
 from graybox.workflow import prepare
 
