@@ -23,6 +23,7 @@ class _Parser(argparse.ArgumentParser):
 
 
 def build_parser() -> argparse.ArgumentParser:
+    """The argument parser of every command."""
     p = _Parser(prog="graybox", description="Gray-box parameter estimation for first-principles process models.")
     p.add_argument("--version", action="version", version=f"graybox {__version__}")
     sub = p.add_subparsers(dest="command", required=True, parser_class=_Parser)
@@ -67,6 +68,7 @@ def _sampler_overrides(args) -> dict:
 
 
 def run(argv: list[str] | None = None) -> int:
+    """Parse ``argv`` and run its command; returns the exit code (errors propagate)."""
     args = build_parser().parse_args(argv)
     from graybox import workflow
 
@@ -97,6 +99,8 @@ def run(argv: list[str] | None = None) -> int:
 
 
 def main(argv: list[str] | None = None) -> int:
+    """The command line: run a command, print a user error as one ``error:`` line (exit 2)
+    and a bug with its traceback (exit 1)."""
     try:
         code = run(argv)
     except GrayboxError as exc:

@@ -13,7 +13,11 @@ Top-level tables (every key is checked; unknown keys are rejected with a suggest
     [estimate]              multistart, max_evaluations, polish, engine, integrator, rtol, atol
     [sampling]              the posterior stage (graybox.posterior)
 
-Relative paths inside resolve against the folder of the study file.
+Relative paths inside resolve against the folder of the study file.  The same tables may
+come as Python values (:func:`settings_from_raw`; graybox.Study.from_values).  The result,
+:class:`StudySettings`, is everything but the data: each experiment's data table is handed
+on located, and validated by the data layer into its DataSpec when graybox.study.Study is
+built (:func:`graybox.study.load_study`).
 
 Everything a fit needs from the study file alone is checked here, once, before any data is
 read: the model, the estimate settings, the noise options, the sampler settings and every
@@ -53,6 +57,9 @@ MAX_EVALUATIONS = 10_000_000
 
 @dataclass(frozen=True)
 class NoiseSpec:
+    """An output's ``[noise.OUTPUT]`` table, checked: a given or estimated sigma, the noise
+    kind with its options, and the noise group it shares an estimated sigma with."""
+
     output: str
     sigma: float | None  # None: estimated
     kind: str = "gaussian"

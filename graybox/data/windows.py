@@ -42,6 +42,8 @@ SensitivityFn = Callable[[Record], Mapping[str, np.ndarray]]
 
 @dataclass(frozen=True)
 class InputMove:
+    """A step of one input inside a window: from ``before`` to ``after`` at ``at_utc``."""
+
     input: str
     before: float
     after: float
@@ -49,12 +51,15 @@ class InputMove:
     units: str
 
     def text(self) -> str:
+        """The move as one line of text."""
         u = f" {self.units}" if self.units else ""
         return f"{self.input} {self.before:.4g} -> {self.after:.4g}{u} at {self.at_utc:%Y-%m-%d %H:%M}Z"
 
 
 @dataclass(frozen=True)
 class WindowScore:
+    """One ranked window: where it lies, its score, its observations and input moves."""
+
     rank: int
     start_utc: datetime
     end_utc: datetime
@@ -65,11 +70,13 @@ class WindowScore:
     moves: tuple[InputMove, ...]
 
     def describe(self) -> str:
+        """The window as one line of a data report."""
         moves = "; ".join(m.text() for m in self.moves) if self.moves else "no input move (steady)"
         return (f"#{self.rank} {self.start_utc:%Y-%m-%d %H:%M}Z .. {self.end_utc:%Y-%m-%d %H:%M}Z  "
                 f"log det {self.log_det:.2f}  ({self.n_obs} observations)  moves: {moves}")
 
     def to_dict(self) -> dict:
+        """The window as a results.json entry."""
         return {"rank": self.rank, "start_utc": self.start_utc.isoformat(), "end_utc": self.end_utc.isoformat(),
                 "t_start_s": self.t_start, "t_end_s": self.t_end, "log_det": self.log_det, "n_obs": self.n_obs,
                 "moves": [m.text() for m in self.moves]}
