@@ -54,7 +54,7 @@ class SamplerSettings:
     min_ess: float = 400.0
     rhat_max: float = 1.01
     tau_factor: float = 50.0
-    tau_rtol: float = 0.05  # floor of the bound on tau's change between checks (the bound follows tau's noise)
+    tau_rtol: float = 0.05  # floor of the bound on tau's drift within the kept chain (last quarter against the first three; the bound follows tau's noise)
     band_draws: int = 400
     progress: str | bool = "auto"
     moves: str = "differential"

@@ -470,7 +470,7 @@ class PosteriorResult:
                 entry["dof_given"] = m.dof
             post = {}
             for p in self.layout.params:
-                if p.output == m.output:
+                if p.applies_to(m.output):  # its own, or its noise group's shared sigma
                     key = {"log_sigma": "sigma", "phi": "phi", "log_nu": "nu"}[p.what]
                     post[key] = {**self.stats[p.name], "prior": p.describe()}
             entry["posterior"] = post

@@ -241,3 +241,24 @@ def test_mixed_noise_kinds_in_a_group_are_refused(tmp_path):
     path = study_file(tmp_path, '\n[noise.y2]\nkind = "student_t"\n\n[noise.groups]\nlength = ["y1", "y2"]\n')
     with pytest.raises(ConfigError, match="must have one noise kind"):
         load_study(path)
+
+
+def test_posterior_reports_the_group_sigma_under_every_member(tmp_path):
+    """The posterior samples one sigma[length] for y1 and y2: results.json's noise entry of
+    each member carries that same posterior (graybox's own reporting rule; before, only the
+    group's first output had it and the others showed an empty posterior)."""
+    import graybox
+
+    x, y1, y2, y3 = data()
+    lines = ["x,y1,y2,y3"] + [",".join(repr(float(v)) for v in row) for row in zip(x, y1, y2, y3)]
+    (tmp_path / "d.csv").write_text("\n".join(lines) + "\n")
+    bounded = {name: {**v, "bounds": [-10.0, 10.0] if name != "d" else [0.1, 10.0]}
+               for name, v in {"a": {"guess": 0.0, "units": "m"}, "b": {"guess": 1.0, "units": "m"},
+                               "c": {"guess": 1.0, "units": "m"}, "d": {"guess": 1.0, "units": "s"}}.items()}
+    study = graybox.load_study(study_file(tmp_path, '\n[noise.groups]\nlength = ["y1", "y2"]\n'),
+                               {"parameters": bounded}, sample=True)
+    post = graybox.fit(study).sample(walkers=16, max_steps=400, seed=3)
+    noise = post.to_dict()["noise"]
+    s1, s2 = noise["y1"]["posterior"]["sigma"], noise["y2"]["posterior"]["sigma"]
+    assert s1["median"] == s2["median"] and s1["ci95"] == s2["ci95"]
+    assert noise["y3"]["posterior"]["sigma"]["median"] != s1["median"]
