@@ -124,12 +124,22 @@ class StudyFit:
         """The data reports ``graybox fit`` prints before fitting."""
         return "\n".join(rep.summary() for rep in self.reports.values())
 
+    @property
+    def data_warnings(self) -> list[str]:
+        """What the data layer warned about (long gaps and silences, stuck runs, clock
+        changes), each prefixed by its experiment."""
+        return [f"{name}: {w}" for name, rep in self.reports.items() for w in rep.warnings]
+
     def __repr__(self) -> str:
-        return self.summary()
+        """The summary; when the data layer warned, a last line saying how many times and
+        where to read them (a notebook user sees no data report otherwise)."""
+        n = len(self.data_warnings)
+        pointer = f"\ndata: {n} warning(s) from loading the data: data_summary() shows them" if n else ""
+        return self.summary() + pointer
 
     def _repr_html_(self) -> str:
         return html_block(f"{self.study.name}: least squares", self.to_frame(), self.summary(),
-                          list(self.estimate.warnings))
+                          self.data_warnings + list(self.estimate.warnings))
 
     def to_dict(self) -> dict:
         """The results document (``results.json`` of a run without sampling)."""

@@ -63,7 +63,7 @@ def test_summaries_are_the_printed_text(cli, api):
     text, _, _ = cli
     fitted, posterior = api
     assert fitted.summary() in text and posterior.summary().split("\n", 1)[1] in text
-    assert repr(fitted) == fitted.summary() and repr(posterior) == posterior.summary()
+    assert repr(fitted).startswith(fitted.summary()) and repr(posterior) == posterior.summary()
 
 
 def test_to_dict_has_the_keys_of_results_json(cli, api):
@@ -126,3 +126,32 @@ def test_sample_keywords_are_checked_like_the_study_keys(api):
     with pytest.raises(GrayboxError, match="must be even") as err:
         fitted.sample(walkers=33)
     assert "sample() keyword walkers" in str(err.value)
+
+
+def test_a_notebook_user_sees_that_the_data_layer_warned():
+    """An output with a 2 h hole (a gap over the default 15 min limit, graybox's documented
+    default in graybox/data/config.py): the repr and the HTML of the fit say so, although a
+    notebook user sees no data report.  Invented first-order lag, y = K u (1 - exp(-t/tau))."""
+    import numpy as np
+    import pandas as pd
+
+    t = np.arange(0.0, 6 * 3600.0, 60.0)
+    u = np.where(t >= 1800.0, 2.0, 1.0)
+    y = 2.0 * u - 2.0 * (u - 1.0) * np.exp(-np.clip(t - 1800.0, 0, None) / 600.0)  # K = 2, tau = 600 s
+    y = y + np.random.default_rng(1).normal(0.0, 0.01, t.size)
+    keep = ~((t >= 7200.0) & (t < 14400.0))
+    frame = pd.DataFrame({"time": t[keep], "u": u[keep], "y": y[keep]})
+    study = graybox.Study.from_values(
+        model={"states": {"x": {"units": "", "rate": "(K*u - x)/tau", "initial": "measured"}},
+               "inputs": {"u": ""}, "outputs": {"y": {"expr": "x"}}},
+        parameters={"K": {"guess": 1.5, "bounds": [0.1, 10.0]}, "tau": {"guess": 300.0, "bounds": [1.0, 1e4], "units": "s"}},
+        data={"files": [frame], "time_column": "time", "time_format": "elapsed", "time_units": "s",
+              "tags": {"u": "u", "y": "y"}},
+        sampling={"enabled": False})
+    fitted = graybox.fit(study)
+    assert any("no usable observation for 2.02 h" in w for w in fitted.data_warnings), fitted.data_warnings
+    assert repr(fitted).startswith(fitted.summary())
+    assert repr(fitted).endswith(f"data: {len(fitted.data_warnings)} warning(s) from loading the data: "
+                                 "data_summary() shows them")
+    assert "no usable observation for 2.02 h" in fitted._repr_html_()
+    assert fitted.parameters["K"].estimate == pytest.approx(2.0, rel=0.01)
