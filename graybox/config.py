@@ -38,7 +38,7 @@ from graybox.configkit import Table, load_toml
 from graybox.errors import ConfigError
 from graybox.estimate.fit import FitSettings
 from graybox.posterior.config import SamplerSettings, parameter_priors, sampler_settings
-from graybox.posterior.noise import NoiseModel, noise_models
+from graybox.posterior.noise import DEFAULT_KIND, NOISE_KINDS, NoiseModel, noise_models
 from graybox.posterior.priors import Prior
 from graybox.model.build import build_spec
 from graybox.model.spec import ModelSpec
@@ -48,7 +48,6 @@ from graybox.simulate.integrators import METHODS
 TOP_KEYS = ("study", "model", "parameters", "data", "experiments", "noise", "estimate", "sampling")
 STUDY_KEYS = ("name", "seed", "dataset", "description")
 NOISE_KEYS = ("sigma", "kind", "phi", "error_time_constant", "dof")
-NOISE_KINDS = ("gaussian", "ar1", "student_t")
 GROUPS_KEY = "groups"  # [noise.groups]: outputs sharing one estimated sigma
 ESTIMATE_KEYS = ("multistart", "max_evaluations", "polish", "engine", "integrator", "rtol", "atol")
 MAX_MULTISTART = 10_000  # each start is a full least-squares fit; 10 to 100 are typical
@@ -62,7 +61,7 @@ class NoiseSpec:
 
     output: str
     sigma: float | None  # None: estimated
-    kind: str = "gaussian"
+    kind: str = DEFAULT_KIND
     options: dict = field(default_factory=dict)
     group: str | None = None  # the [noise.groups] group whose one estimated sigma it shares
 
@@ -305,7 +304,7 @@ def _noise(table: Table, spec: ModelSpec) -> dict[str, NoiseSpec]:
             value = None
         else:
             value = t.number("sigma", positive=True)
-        kind = t.string("kind", "gaussian", NOISE_KINDS)
+        kind = t.string("kind", DEFAULT_KIND, NOISE_KINDS)
         options = {k: t.data[k] for k in ("phi", "error_time_constant", "dof") if k in t}
         out[o] = NoiseSpec(o, value, kind, options)
     member_of = _noise_groups(table, spec, out)

@@ -15,7 +15,6 @@ from typing import NamedTuple
 import numpy as np
 
 from graybox.estimate.problem import Problem
-from graybox.posterior.noise import KIND_AR1, simulate_errors
 
 CHUNK = 128  # draws simulated per batch
 
@@ -62,11 +61,8 @@ def predictive_bands(problem: Problem, posterior, n_draws: int, rng: np.random.G
     for e, pred in enumerate(preds):
         bands = {}
         for o in problem.spec.output_names:
-            m = layout.model(o)
             y = pred[o][ok]
-            sigma, phi, nu = layout.values(N[ok], o)
-            pj = layout.spacing[o].lag_coefficients(e, phi, m.tau_e) if m.kind == KIND_AR1 else None
-            noise = simulate_errors(m.kind, sigma, rng, y.shape[1], phi_j=pj, nu=nu)
+            noise = layout.simulate(o, e, N[ok], rng, y.shape[1])
             lo_c, hi_c = np.quantile(y, [0.025, 0.975], axis=0)
             lo_p, hi_p = np.quantile(y + noise, [0.025, 0.975], axis=0)
             bands[o] = PredictiveBand(lo_c, hi_c, lo_p, hi_p)

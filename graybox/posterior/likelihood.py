@@ -14,7 +14,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from graybox.estimate.problem import Problem
-from graybox.posterior.noise import KIND_GAUSSIAN, NoiseLayout
+from graybox.posterior.noise import NoiseLayout
 from graybox.posterior.priors import KIND_FLAT, KIND_UNIFORM, Prior
 
 
@@ -39,7 +39,7 @@ class LogPosterior:
         self._log_free = np.array([p.log_scale for p in self.priors], bool)
         self._shaped = [j for j, p in enumerate(self.priors) if p.kind not in (KIND_UNIFORM, KIND_FLAT)]
         self._log_noise = np.array([p.what != "phi" for p in self.layout.params], bool)
-        self._sums_suffice = all(m.kind == KIND_GAUSSIAN for m in self.layout.models)
+        self._sums_suffice = self.layout.sums_suffice
         self._nu_cols = [self.n_free + k for k, p in enumerate(self.layout.params) if p.what == "log_nu"]
 
     @property

@@ -53,7 +53,7 @@ from graybox.posterior.config import SamplerSettings, priors_from_spec
 from graybox.posterior.diagnostics import (CI95, DIAGNOSTIC_KEYS, RHAT_NOTE, autocorr_change_sd, autocorr_creep,
                                           autocorr_time, chain_diagnostics, group_count, quantile_mcse)
 from graybox.posterior.likelihood import LogPosterior
-from graybox.posterior.noise import KIND_AR1, NoiseLayout, noise_layout
+from graybox.posterior.noise import NoiseLayout, noise_layout
 from graybox.posterior.priors import Prior
 
 START_SCALE = 0.1  # ball radius in least-squares standard deviations
@@ -460,14 +460,7 @@ class PosteriorResult:
         ``posterior.{sigma, phi, nu}.{median, mean, sd, ci95, ess, rhat, ...}``."""
         out = {}
         for m in self.layout.models:
-            entry: dict = {"kind": m.kind, "model": m.describe(), "sigma_given": m.sigma}
-            if m.kind == KIND_AR1:
-                entry["phi_given"] = m.phi
-                entry["error_time_constant_s"] = m.tau_e
-                entry["reference_spacing_s"] = self.layout.spacing[m.output].dt_ref
-                entry["restarts"] = self.layout.spacing[m.output].n_restarts
-            if m.kind == "student_t":
-                entry["dof_given"] = m.dof
+            entry: dict = {"kind": m.kind, "model": m.describe(), "sigma_given": m.sigma, **self.layout.entries(m)}
             post = {}
             for p in self.layout.params:
                 if p.applies_to(m.output):  # its own, or its noise group's shared sigma
