@@ -13,7 +13,7 @@ The names are imported on first use, so that ``import graybox`` stays cheap (the
 line imports what each command needs).
 """
 
-__version__ = "0.1.0"
+from graybox.versions import GRAYBOX_VERSION as __version__
 
 _API = {"Study": "graybox.study", "load_study": "graybox.study", "StudyFit": "graybox.results",
         "StudyPosterior": "graybox.results", "StudyCheck": "graybox.results", "check": "graybox.api",

@@ -11,7 +11,7 @@ import argparse
 import sys
 import traceback
 
-from graybox import __version__
+from graybox.versions import GRAYBOX_VERSION
 from graybox.errors import EXIT_INTERNAL, EXIT_OK, EXIT_USER, GrayboxError
 
 
@@ -25,7 +25,7 @@ class _Parser(argparse.ArgumentParser):
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of every command."""
     p = _Parser(prog="graybox", description="Gray-box parameter estimation for first-principles process models.")
-    p.add_argument("--version", action="version", version=f"graybox {__version__}")
+    p.add_argument("--version", action="version", version=f"graybox {GRAYBOX_VERSION}")
     sub = p.add_subparsers(dest="command", required=True, parser_class=_Parser)
 
     f = sub.add_parser("fit", help="fit a study file's model to its data and write a run folder")

@@ -17,7 +17,6 @@ from typing import Callable
 
 import numpy as np
 
-import graybox
 from graybox.data.config import DataSpec
 from graybox.data.record import Record
 from graybox.data.report import DataReport
@@ -29,7 +28,7 @@ from graybox.runs.artifacts import OutputTrace
 from graybox.runs.folder import sha256_file
 from graybox.simulate import Engine, plan
 from graybox.study import Study
-from graybox.versions import installed_versions
+from graybox.versions import GRAYBOX_VERSION, installed_versions
 
 Echo = Callable[[str], None]
 
@@ -257,7 +256,7 @@ def run_record(prepared: Prepared, clock: RunClock) -> dict:
         "config": str(study.path) if study.path is not None else None,
         "config_sha256": study_sha256(study),
         "data_files": files,
-        "graybox_version": graybox.__version__,
+        "graybox_version": GRAYBOX_VERSION,
         "engine": prepared.engine.name,
         "engine_note": prepared.engine.note,
         "integrator": {"method": study.tol.method, "rtol": study.tol.rtol, "atol": study.tol.atol},
@@ -273,7 +272,7 @@ def results_document(prepared: Prepared, res: FitResult, clock: RunClock) -> dic
     """The results document of a least-squares fit (``results.json`` before sampling)."""
     study = prepared.study
     return {
-        "graybox": {"version": graybox.__version__, "schema": 1},
+        "graybox": {"version": GRAYBOX_VERSION, "schema": 1},
         "study": {"name": study.name, "model": study.spec.describe(), "model_warnings": list(study.spec.warnings)},
         "parameters": {name: p.to_dict() for name, p in res.parameters.items()},
         "noise": res.noise_dict(),

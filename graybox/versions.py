@@ -4,6 +4,9 @@ from __future__ import annotations
 
 from importlib.metadata import PackageNotFoundError, version
 
+# graybox's own version (pyproject.toml says the same; ``graybox.__version__`` is this)
+GRAYBOX_VERSION = "0.1.0"
+
 # the packages a run's numbers depend on (recorded with every run)
 PACKAGES = ("numpy", "scipy", "pandas", "lmfit", "emcee", "numba", "pint", "matplotlib")
 

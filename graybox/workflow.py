@@ -11,7 +11,6 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
-import graybox
 from graybox.api import check, fit, write_run_document
 from graybox.errors import GrayboxError
 from graybox.runs.folder import check_target
@@ -76,7 +75,7 @@ DEMO = "storage_vessel"
 
 def demo_paths() -> tuple[Path, Path]:
     """The bundled demo study file and dataset folder (source tree or installed copy)."""
-    root = Path(graybox.__file__).resolve().parent.parent
+    root = Path(__file__).resolve().parent.parent  # graybox/workflow.py -> the source tree
     cfg = root / "configs" / f"{DEMO}.toml"
     data = root / "datasets" / DEMO
     if not cfg.exists():

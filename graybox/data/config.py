@@ -128,14 +128,15 @@ import numpy as np
 
 from graybox.configkit import Table, parse_duration
 from graybox.data.record import HOLD_MODES, HOLD_PREVIOUS
-from graybox.data.units import TagUnits
+from graybox.data.units import TagUnits, seconds_per_time_unit
 from graybox.errors import ConfigError, DataError
 
 ROLE_INPUT = "input"
 ROLE_OUTPUT = "output"
 LAYOUTS = ("wide", "long")
 FORMATS = ("csv", "parquet", "excel")
-TIME_FORMATS = ("iso", "local", "epoch_s", "serial_1900", "serial_1904", "elapsed")
+ELAPSED = "elapsed"  # time since the start of a run, in declared time_units
+TIME_FORMATS = ("iso", "local", "epoch_s", "serial_1900", "serial_1904", ELAPSED)
 DATE_ORDERS = ("ymd", "dmy", "mdy")
 CLOCKS = ("24h", "12h")
 STUCK_ACTIONS = ("flag", "mask")
@@ -604,8 +605,6 @@ def parse_data_table(table: dict, name: str, *, symbols: Mapping[str, SymbolInfo
 def _time_units(t: Table, tfmt: str) -> tuple[str | None, float | None]:
     """The elapsed-time unit and its seconds: required by time_format = "elapsed", refused
     elsewhere (every other format says its own unit)."""
-    from graybox.data.timestamps import ELAPSED, seconds_per_time_unit
-
     if tfmt != ELAPSED:
         if "time_units" in t:
             raise t.error("time_units", f"time_format = '{tfmt}' stamps carry their own units",

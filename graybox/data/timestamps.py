@@ -41,11 +41,10 @@ import numpy as np
 import pandas as pd
 
 from graybox.data.columns import arrow_text as _arrow_text, regex_matches, text_codes, text_runs
-from graybox.data.config import TimeSpec
+from graybox.data.config import ELAPSED, TimeSpec, table_from_where
 from graybox.errors import DataError
 
 NAT = np.iinfo(np.int64).min
-ELAPSED = "elapsed"
 _DAY_NS = 86_400 * 10**9
 _SERIAL_1900_BASE = np.datetime64("1899-12-30T00:00:00", "ns").astype(np.int64)
 _SERIAL_1904_BASE = np.datetime64("1904-01-01T00:00:00", "ns").astype(np.int64)
@@ -571,35 +570,10 @@ def _second_pass(wall: np.ndarray, groups: np.ndarray | None) -> np.ndarray:
 
 
 # -- the time axis of an experiment ------------------------------------------------------------
-def seconds_per_time_unit(text, where: str) -> float:
-    """Seconds in one ``text`` (``"min"``, ``"h"``, ``"s"``, ``"day"``...), by the shared pint
-    registry; a ConfigError located at ``where`` for text that is no unit or no time."""
-    import pint
-
-    from graybox.errors import ConfigError
-    from graybox.unitreg import registry
-
-    hint = "time_units = \"min\" (or \"s\", \"h\", \"day\")"
-    if not isinstance(text, str) or not text.strip():
-        raise ConfigError(f"time_units must be a time unit as text, got {text!r}", where=where, hint=hint)
-    ureg = registry()
-    try:
-        unit = ureg.Unit(text.strip())
-    except (pint.errors.UndefinedUnitError, pint.errors.DefinitionSyntaxError, ValueError, TypeError,
-            AttributeError, AssertionError):
-        raise ConfigError(f"'{text}' is not a unit", where=where, hint=hint) from None
-    if unit.dimensionality != ureg.second.dimensionality:
-        raise ConfigError(f"'{text}' is not a unit of time (its dimension is {unit.dimensionality})", where=where,
-                          hint=hint)
-    return float(ureg.Quantity(1.0, unit).to(ureg.second).magnitude)
-
-
 def require_time_axis(spec, dynamic: bool) -> None:
     """A model with states is simulated in time: its data must say when each row was taken.
     A static model (no states) may take the rows in their order (0, 1, 2, ... s)."""
     if dynamic and spec.time.column is None:
-        from graybox.data.config import table_from_where
-
         raise DataError("the model has states, but the data table names no time column: its rows have no times to "
                         "simulate on", where=table_from_where({}, spec.where).where("time_column"),
                         hint="add time_column = \"...\" (the column of time stamps) with its time_format; for time "

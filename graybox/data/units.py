@@ -338,3 +338,21 @@ def _temperature_quantity(text: str, where: str) -> pint.Quantity:
         raise ConfigError(f"standard_temperature '{text}' is not a temperature", where=where,
                           hint="write e.g. '0 degC', '15 degC', '60 degF'") from None
     return q
+
+
+def seconds_per_time_unit(text, where: str) -> float:
+    """Seconds in one ``text`` (``"min"``, ``"h"``, ``"s"``, ``"day"``...), by the shared pint
+    registry; a ConfigError located at ``where`` for text that is no unit or no time."""
+    hint = "time_units = \"min\" (or \"s\", \"h\", \"day\")"
+    if not isinstance(text, str) or not text.strip():
+        raise ConfigError(f"time_units must be a time unit as text, got {text!r}", where=where, hint=hint)
+    ureg = registry()
+    try:
+        unit = ureg.Unit(text.strip())
+    except (pint.errors.UndefinedUnitError, pint.errors.DefinitionSyntaxError, ValueError, TypeError,
+            AttributeError, AssertionError):
+        raise ConfigError(f"'{text}' is not a unit", where=where, hint=hint) from None
+    if unit.dimensionality != ureg.second.dimensionality:
+        raise ConfigError(f"'{text}' is not a unit of time (its dimension is {unit.dimensionality})", where=where,
+                          hint=hint)
+    return float(ureg.Quantity(1.0, unit).to(ureg.second).magnitude)

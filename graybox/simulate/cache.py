@@ -42,9 +42,9 @@ def versions() -> dict[str, str]:
     import numba
     import numpy
 
-    import graybox
+    from graybox.versions import GRAYBOX_VERSION
 
-    return {"graybox": graybox.__version__, "numba": numba.__version__, "numpy": numpy.__version__,
+    return {"graybox": GRAYBOX_VERSION, "numba": numba.__version__, "numpy": numpy.__version__,
             "python": "%d.%d.%d" % sys.version_info[:3]}
 
 
