@@ -116,15 +116,15 @@ def run_vessel(args) -> dict:
 
 
 def run_demo(args) -> dict:
-    from graybox.config import load_study
+    from graybox import load_study
     from graybox.estimate.fit import fit
-    from graybox.posterior import run_posterior, sampler_settings
-    from graybox.workflow import prepare
+    from graybox.posterior import run_posterior
+    from graybox.stages import prepare
 
-    study = load_study(ROOT / "configs" / "storage_vessel.toml")
+    study = load_study(ROOT / "configs" / "storage_vessel.toml", sampler_options={"max_steps": args.max_steps or None})
     prepared = prepare(study)
     res = fit(prepared.problem, study.fit)
-    st = replace(sampler_settings(study.sampling, {"max_steps": args.max_steps or None}), progress=False)
+    st = replace(study.sampler, progress=False)
     t0 = time.perf_counter()
     post = run_posterior(prepared.problem, res, study.noise, st, seed=study.seed, file=study.path)
     return {"demo_s": time.perf_counter() - t0, "post": post, "n_obs": prepared.problem.n_obs,

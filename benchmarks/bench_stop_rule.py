@@ -281,15 +281,15 @@ def write_two_tanks(folder: Path, check_every: int, hours: float = 12.0, dt: flo
 def prepared_fit(path: Path):
     """Study, prepared problem, least-squares result, sampler settings, priors (the stages
     before sampling, not timed)."""
-    from graybox.config import load_study
+    from graybox import load_study
     from graybox.estimate.fit import fit
-    from graybox.posterior import priors_from_spec, sampler_settings
-    from graybox.workflow import prepare
+    from graybox.posterior import priors_from_spec
+    from graybox.stages import prepare
 
     study = load_study(path)
     prepared = prepare(study)
     res = fit(prepared.problem, study.fit)
-    st = replace(sampler_settings(study.sampling), progress=False)
+    st = replace(study.sampler, progress=False)
     priors = priors_from_spec(study.spec, prepared.problem, study.path)
     return study, prepared.problem, res, st, priors
 

@@ -137,13 +137,6 @@ def read_study(path: str | Path, overrides: dict | None = None, *, sample: bool 
     return replace(settings, overrides=dict(overrides or {}))
 
 
-def load_study(path: str | Path, overrides: dict | None = None, *, sample: bool | None = None,
-               sampler_options: dict | None = None) -> StudySettings:
-    """The older name of :func:`read_study` (the study's settings without its data specs);
-    ``graybox.load_study`` gives the whole :class:`graybox.study.Study`."""
-    return read_study(path, overrides, sample=sample, sampler_options=sampler_options)
-
-
 def settings_from_raw(raw: dict, *, path: Path | None, folder: Path, sample: bool | None = None,
                       sampler_options: dict | None = None) -> StudySettings:
     """Check a study given as its tables (as a study file would hold them: ``{"study":

@@ -114,8 +114,8 @@ def engine_for(study: Study, spec: ModelSpec | None = None) -> Engine:
 
 def prepare(study) -> Prepared:
     """Load a study's data and build its estimation problem.  Takes a
-    :class:`~graybox.study.Study` (or the settings of the older ``graybox.config.load_study``,
-    whose data tables are then validated here)."""
+    :class:`~graybox.study.Study` (or the :class:`~graybox.config.StudySettings` of
+    ``graybox.config.read_study``, whose data tables are then validated here)."""
     from graybox.study import as_study
 
     study = as_study(study)

@@ -217,8 +217,8 @@ def load_study(path: str | Path, overrides: dict | None = None, *, sample: bool 
 
 
 def as_study(study: Study | StudySettings) -> Study:
-    """A :class:`Study` from either a study or settings without data specs (the older
-    ``graybox.config.load_study``'s result)."""
+    """A :class:`Study` from either a study or settings without data specs (what
+    :func:`graybox.config.read_study` returns)."""
     return study if isinstance(study, Study) else Study.from_settings(study)
 
 

@@ -21,8 +21,7 @@ from graybox.data.record import (  # noqa: F401
 )
 from graybox.data.config import SymbolInfo  # noqa: F401
 from graybox.data.report import DataReport, SegmentReport, TagReport  # noqa: F401
-from graybox.data.assemble import (check_experiment, check_spec, data_spec, load_experiment,  # noqa: F401
-                                   load_spec)
+from graybox.data.assemble import check_experiment, check_spec, load_experiment, load_spec  # noqa: F401
 from graybox.data.split import split_record  # noqa: F401
 from graybox.data.windows import (  # noqa: F401
     InputMove,

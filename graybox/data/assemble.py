@@ -762,8 +762,3 @@ def check_experiment(table: dict, name: str, *, symbols: Mapping[str, SymbolInfo
     spec = parse_data_table(table, name, symbols=symbols, base_dir=Path(base_dir), where=where)
     require_time_axis(spec, dynamic)
     return check_spec(spec, sensitivity_fn)
-
-
-def data_spec(table: dict, name: str, *, symbols: Mapping[str, SymbolInfo], base_dir: Path, where: str) -> DataSpec:
-    """The validated data section (holdout, informative-window settings, ...), without reading files."""
-    return parse_data_table(table, name, symbols=symbols, base_dir=Path(base_dir), where=where)
