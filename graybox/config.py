@@ -38,7 +38,7 @@ from graybox.configkit import Table, load_toml
 from graybox.errors import ConfigError
 from graybox.estimate.fit import FitSettings
 from graybox.posterior.config import SamplerSettings, parameter_priors, sampler_settings
-from graybox.posterior.noise import DEFAULT_KIND, NOISE_KINDS, NoiseModel, noise_models
+from graybox.posterior.noise import DEFAULT_KIND, NOISE_KINDS, NOISE_OPTIONS, NoiseModel, noise_models
 from graybox.posterior.priors import Prior
 from graybox.model.build import build_spec
 from graybox.model.spec import ModelSpec
@@ -47,7 +47,7 @@ from graybox.simulate.integrators import METHODS
 
 TOP_KEYS = ("study", "model", "parameters", "data", "experiments", "noise", "estimate", "sampling")
 STUDY_KEYS = ("name", "seed", "dataset", "description")
-NOISE_KEYS = ("sigma", "kind", "phi", "error_time_constant", "dof")
+NOISE_KEYS = ("sigma", "kind", *NOISE_OPTIONS)
 GROUPS_KEY = "groups"  # [noise.groups]: outputs sharing one estimated sigma
 ESTIMATE_KEYS = ("multistart", "max_evaluations", "polish", "engine", "integrator", "rtol", "atol")
 MAX_MULTISTART = 10_000  # each start is a full least-squares fit; 10 to 100 are typical
@@ -298,7 +298,7 @@ def _noise(table: Table, spec: ModelSpec) -> dict[str, NoiseSpec]:
         else:
             value = t.number("sigma", positive=True)
         kind = t.string("kind", DEFAULT_KIND, NOISE_KINDS)
-        options = {k: t.data[k] for k in ("phi", "error_time_constant", "dof") if k in t}
+        options = {k: t.data[k] for k in NOISE_OPTIONS if k in t}
         out[o] = NoiseSpec(o, value, kind, options)
     member_of = _noise_groups(table, spec, out)
     return {o: replace(n, group=member_of.get(o)) for o, n in out.items()}

@@ -27,8 +27,7 @@ import numpy as np
 
 from graybox.configkit import Table
 from graybox.errors import ConfigError, SampleError
-from graybox.posterior.priors import (KIND_FLAT, KIND_LOGNORMAL, KIND_NORMAL, KIND_UNIFORM, PRIOR_KEYS,
-                                      PRIOR_KINDS, Prior)
+from graybox.posterior.priors import KIND_FLAT, KIND_UNIFORM, PRIOR_KEYS, PRIOR_KINDS, Prior, prior_kind
 
 SAMPLING_KEYS = ("enabled", "walkers", "max_steps", "check_every", "seed", "min_ess", "rhat_max", "tau_factor",
                  "band_draws", "progress", "moves")
@@ -178,8 +177,7 @@ def expand_priors(base: dict[str, Prior], spec, problem) -> list[Prior]:
 
 
 def _prior_of(p, file: Path | None, proper: bool = True) -> Prior:
-    raw = p.prior if p.prior is not None else {"kind": KIND_UNIFORM}
-    t = Table(dict(raw), ("parameters", p.name, "prior"), file)
+    t = Table(dict(p.prior) if p.prior is not None else {}, ("parameters", p.name, "prior"), file)
     try:
         kind = t.string("kind", KIND_UNIFORM, PRIOR_KINDS)
         t.check_keys(("kind", *PRIOR_KEYS[kind]))
@@ -191,33 +189,9 @@ def _prior_of(p, file: Path | None, proper: bool = True) -> Prior:
             raise SampleError(f"the prior's {key} must be positive, got {values[key]!r}", where=t.where(key),
                               hint="a scale of a prior is a standard deviation: a positive number")
     lo, hi = float(p.lower), float(p.upper)
-    if kind == KIND_UNIFORM:
-        if not (math.isfinite(lo) and math.isfinite(hi)):
-            if not proper:
-                return Prior(p.name, KIND_FLAT, lo, hi, p.log_scale)
-            where = t.where("kind" if p.prior is not None else None)  # no prior written: the parent's line
-            raise SampleError(f"parameter '{p.name}' has a uniform prior (the default) but its bounds "
-                              f"[{lo:g}, {hi:g}] are not both finite", where=where,
-                              hint="give finite bounds = [low, high], or a normal, lognormal or halfnormal prior "
-                                   "(or turn sampling off: [sampling] enabled = false, or --no-sample)")
-        return Prior(p.name, kind, lo, hi, p.log_scale)
-    if kind == KIND_NORMAL:
-        prior = Prior(p.name, kind, lo, hi, p.log_scale, values["mean"], values["sd"])
-        centre, key = values["mean"], "mean"
-    elif kind == KIND_LOGNORMAL:
-        if not values["median"] > 0:
-            raise SampleError(f"a lognormal prior needs a positive median, got {values['median']!r}",
-                              where=t.where("median"))
-        prior = Prior(p.name, kind, lo, hi, p.log_scale, math.log(values["median"]), values["log_sd"])
-        centre, key = values["median"], "median"
-    else:
-        prior = Prior(p.name, kind, lo, hi, p.log_scale, 0.0, values["sd"])
-        centre, key = 0.0, "sd"
-        if hi <= 0:
-            raise SampleError(f"a halfnormal prior lives on values >= 0, but the bounds of '{p.name}' are "
-                              f"[{lo:g}, {hi:g}]", where=t.where("kind"),
-                              hint="use a normal prior, or bounds that include positive values")
-        centre = max(lo, 0.0)
+    prior, centre, key = prior_kind(kind).build(p.name, lo, hi, p.log_scale, values, t, proper)
+    if centre is None:
+        return prior
     s_lo, s_hi = prior.support()
     if not s_lo < s_hi:
         raise SampleError(f"the {kind} prior of '{p.name}' puts no probability inside its bounds [{lo:g}, {hi:g}]",

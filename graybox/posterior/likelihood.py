@@ -15,7 +15,7 @@ import numpy as np
 
 from graybox.estimate.problem import Problem
 from graybox.posterior.noise import NoiseLayout
-from graybox.posterior.priors import KIND_FLAT, KIND_UNIFORM, Prior
+from graybox.posterior.priors import Prior
 
 
 @dataclass
@@ -37,7 +37,7 @@ class LogPosterior:
         self._hi = np.array([b[1] for b in bounds], float)
         self._upper_open = np.array([False] * self.n_free + [p.what == "phi" for p in self.layout.params])
         self._log_free = np.array([p.log_scale for p in self.priors], bool)
-        self._shaped = [j for j, p in enumerate(self.priors) if p.kind not in (KIND_UNIFORM, KIND_FLAT)]
+        self._shaped = [j for j, p in enumerate(self.priors) if p.shaped]
         self._log_noise = np.array([p.what != "phi" for p in self.layout.params], bool)
         self._sums_suffice = self.layout.sums_suffice
         self._nu_cols = [self.n_free + k for k, p in enumerate(self.layout.params) if p.what == "log_nu"]

@@ -15,6 +15,7 @@ from graybox.posterior.noise_kinds.student_t import StudentT
 REGISTRY: dict[str, NoiseKind] = {k.name: k for k in (Gaussian(), AR1(), StudentT())}
 DEFAULT_KIND = Gaussian.name
 NOISE_KINDS = tuple(REGISTRY)
+NOISE_OPTIONS = tuple(dict.fromkeys(key for k in REGISTRY.values() for key in k.options))  # every kind's keys
 
 
 def noise_kind(name: str) -> NoiseKind:
@@ -28,4 +29,4 @@ def option_owner(key: str) -> str | None:
     return next((k.name for k in REGISTRY.values() if key in k.options), None)
 
 
-__all__ = ["DEFAULT_KIND", "NOISE_KINDS", "REGISTRY", "NoiseKind", "NoiseParam", "noise_kind", "option_owner"]
+__all__ = ["DEFAULT_KIND", "NOISE_KINDS", "NOISE_OPTIONS", "REGISTRY", "NoiseKind", "NoiseParam", "noise_kind", "option_owner"]
