@@ -51,7 +51,8 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 from graybox.posterior.diagnostics import DIAGNOSTIC_KEYS, autocorr_time, chain_diagnostics, rhat_rank  # noqa: E402
-from graybox.posterior.sample import Check, burn_and_thin, sampler_threads  # noqa: E402
+from graybox.posterior.convergence import Check, burn_and_thin  # noqa: E402
+from graybox.posterior.sample import sampler_threads  # noqa: E402
 
 G = 9.80665
 START = datetime(2026, 3, 2, tzinfo=timezone.utc)

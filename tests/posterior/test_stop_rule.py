@@ -43,7 +43,7 @@ from graybox.posterior.diagnostics import (
     rhat_grouped,
     rhat_rank,
 )
-from graybox.posterior.sample import STABILITY_PART, check_convergence
+from graybox.posterior.convergence import STABILITY_PART, check_convergence
 from tests.posterior.helpers import LINEAR_MODEL, fitted, noise, problem_of, spec_of
 
 Z975 = stats.norm.ppf(0.975)
