@@ -151,12 +151,17 @@ def load_toml(path: Path) -> dict:
 
 @dataclass(frozen=True)
 class Table:
+    """A table of a study file with where it sits (the file and the path of table names):
+    every getter checks the value's type and range and raises a ConfigError located at
+    file:line [table] key, with a hint."""
+
     data: dict
     path: tuple[str, ...] = ()
     file: Path | None = None
 
     # -- locations ---------------------------------------------------------------------------
     def where(self, key: str | None = None) -> str:
+        """The location of the table (or of its ``key``) for messages: file:line [table.path] key 'key'."""
         line = _find_line(self.file, self.path, key)
         loc = str(self.file) if self.file else "<config>"
         if line:
@@ -168,16 +173,19 @@ class Table:
         return loc
 
     def error(self, key: str | None, message: str, hint: str | None = None) -> ConfigError:
+        """A ConfigError located at ``key`` of this table (None: the table itself)."""
         return ConfigError(message, where=self.where(key), hint=hint)
 
     # -- structure ---------------------------------------------------------------------------
     def keys(self) -> list[str]:
+        """The keys the table holds, in file order."""
         return list(self.data)
 
     def __contains__(self, key: str) -> bool:
         return key in self.data
 
     def check_keys(self, allowed: Iterable[str]) -> None:
+        """A ConfigError for the first key not in ``allowed``, suggesting the closest allowed key."""
         allowed = list(allowed)
         for key in self.data:
             if key not in allowed:
@@ -186,6 +194,8 @@ class Table:
                 raise self.error(key, "unknown key", hint=hint)
 
     def sub(self, key: str, *, required: bool = False) -> "Table":
+        """The sub-table ``key`` (an empty one when absent, unless ``required``); a ConfigError when
+        it is missing but required or not a table."""
         value = self.data.get(key, _MISSING)
         if value is _MISSING:
             if required:
@@ -196,10 +206,12 @@ class Table:
         return Table(value, (*self.path, key), self.file)
 
     def items(self) -> Iterator[tuple[str, Any]]:
+        """The table's (key, value) pairs, values as read."""
         return iter(self.data.items())
 
     # -- typed accessors ---------------------------------------------------------------------
     def get(self, key: str, default: Any = _MISSING):
+        """The value of ``key``, or ``default``; a ConfigError when it is absent and has no default."""
         if key not in self.data:
             if default is _MISSING:
                 raise self.error(key, "missing required key")
@@ -207,6 +219,8 @@ class Table:
         return self.data[key]
 
     def string(self, key: str, default: Any = _MISSING, choices: Iterable[str] | None = None) -> str:
+        """The text value of ``key`` (or ``default``); a ConfigError when it is not text or not one
+        of ``choices`` (suggesting the closest)."""
         value = self.get(key, default)
         if value is default and default is not _MISSING:
             return value
@@ -222,6 +236,9 @@ class Table:
 
     def number(self, key: str, default: Any = _MISSING, *, positive: bool = False, finite: bool = True,
                integer: bool = False, minimum: float | None = None) -> float:
+        """The number at ``key`` (or ``default``), checked: a number (not a boolean) fitting in 64
+        bits, finite, positive, an integer, at least ``minimum``, as asked; an int when
+        ``integer``, else a float."""
         value = self.get(key, default)
         if value is default and default is not _MISSING:
             return value
@@ -240,12 +257,14 @@ class Table:
         return int(value) if integer else float(value)
 
     def boolean(self, key: str, default: Any = _MISSING) -> bool:
+        """The true/false value of ``key`` (or ``default``); a ConfigError for anything else."""
         value = self.get(key, default)
         if not isinstance(value, bool):
             raise self.error(key, f"must be true or false, got {value!r}")
         return value
 
     def string_list(self, key: str, default: Any = _MISSING) -> list[str]:
+        """The text or list of texts at ``key`` as a list (or ``default``)."""
         value = self.get(key, default)
         if value is default and default is not _MISSING:
             return value
@@ -256,6 +275,7 @@ class Table:
         return list(value)
 
     def pair(self, key: str, default: Any = _MISSING) -> tuple[float, float]:
+        """The pair ``[low, high]`` of numbers at ``key`` (or ``default``), with low below high."""
         value = self.get(key, default)
         if value is default and default is not _MISSING:
             return value

@@ -20,6 +20,7 @@ class GrayboxError(Exception):
         super().__init__(self.render())
 
     def render(self) -> str:
+        """The message as the CLI prints it: ``where: message`` and an indented hint line."""
         text = f"{self.where}: {self.message}" if self.where else self.message
         if self.hint:
             text += f"\n  hint: {self.hint}"
@@ -27,32 +28,48 @@ class GrayboxError(Exception):
 
 
 class ConfigError(GrayboxError):
+    """A study file (or its Python values) is wrong: a table, key or value."""
+
     layer = "config"
 
 
 class ModelError(GrayboxError):
+    """The model's equations, symbols or units are wrong."""
+
     layer = "model"
 
 
 class DataError(GrayboxError):
+    """A data file or table cannot be read or used: a file, row, column or tag."""
+
     layer = "data"
 
 
 class SimulationError(GrayboxError):
+    """The model cannot be simulated on this timeline (e.g. the integrator cannot proceed)."""
+
     layer = "simulate"
 
 
 class FitError(GrayboxError):
+    """The least-squares problem cannot be set up or solved as asked."""
+
     layer = "estimate"
 
 
 class SampleError(GrayboxError):
+    """The posterior stage cannot run as asked (priors, noise options, sampler settings)."""
+
     layer = "posterior"
 
 
 class RunError(GrayboxError):
+    """A run folder cannot be written or read."""
+
     layer = "runs"
 
 
 class BatchError(GrayboxError):
+    """A fleet batch is wrong: its manifest, jobs or cluster."""
+
     layer = "batch"

@@ -36,6 +36,10 @@ _JOB_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.\-]*$")
 
 @dataclass(frozen=True)
 class Job:
+    """One manifest row: the job's name, its study file, the data files replacing the study's
+    (empty: the study's own), an optional UTC window (start/end text), whether it samples
+    (None: as the study says), its manifest line and its own timeout (s; None: the batch's)."""
+
     name: str
     study: Path
     data: tuple[Path, ...]  # empty: the study's own files
@@ -46,6 +50,8 @@ class Job:
     timeout_s: float | None = None
 
     def overrides(self) -> dict:
+        """The study-file keys this job replaces (``{"data": {"files": [...], "select": [[start,
+        end]]}}``; an open end of the window is far past or future), or ``{}``."""
         data: dict = {}
         if self.data:
             data["files"] = [str(p) for p in self.data]
@@ -77,6 +83,9 @@ def _parse_bool(text: str, where: str) -> bool | None:
 
 
 def read_manifest(path: str | Path) -> list[Job]:
+    """The jobs of a CSV manifest, checked (known and required columns, cell counts, job
+    names usable as folders and unique, study and data files present, timestamps and
+    windows, sample yes/no, positive timeouts); a BatchError at the manifest line otherwise."""
     path = Path(path).resolve()
     try:
         text = path.read_text(encoding="utf-8-sig")

@@ -40,6 +40,10 @@ STATUS_DONE, STATUS_FAILED, STATUS_TIMEOUT, STATUS_SKIPPED = "done", "failed", "
 
 @dataclass(frozen=True)
 class BatchSettings:
+    """How a fleet batch runs: the output folder, local worker count, per-job timeout (s),
+    the Dask scheduler address (None: local threads), whether workers share the output
+    storage, the base seed each job's seed derives from, and the cluster connect timeout (s)."""
+
     out: Path
     workers: int = 2
     timeout_s: float = 1800.0
@@ -51,6 +55,9 @@ class BatchSettings:
 
 @dataclass
 class JobOutcome:
+    """What became of one job: its name, status (``done``, ``failed``, ``timeout`` or
+    ``skipped``), the error text, wall time (s), its run folder and its results document."""
+
     job: str
     status: str
     error: str = ""
@@ -60,6 +67,8 @@ class JobOutcome:
 
 
 def job_seed(base_seed: int, job: str) -> int:
+    """A job's seed: numpy's SeedSequence of the base seed with a spawn key from the SHA-256
+    of the job's name, so it depends on the name only, not on the job's order or worker."""
     stable = int.from_bytes(hashlib.sha256(job.encode()).digest()[:8], "little")
     return int(np.random.SeedSequence(base_seed, spawn_key=(stable,)).generate_state(1)[0])
 
@@ -81,6 +90,8 @@ def study_data_files(job: Job) -> list[Path]:
 
 
 def fingerprint(job: Job) -> dict:
+    """What a job's result depends on: its name, the SHA-256 of its study file and of its
+    data files, and its overrides (recorded in the run; equal fingerprints mean the job is done)."""
     return {
         "job": job.name,
         "study_sha256": sha256_file(job.study),
@@ -90,6 +101,7 @@ def fingerprint(job: Job) -> dict:
 
 
 def already_done(out: Path, fp: dict) -> bool:
+    """Whether ``out`` holds a finished run of a job with this fingerprint (an unreadable results file: no)."""
     path = out / RESULTS
     if not path.is_file():
         return False
@@ -212,6 +224,8 @@ def _progress(total: int, desc: str):
 
 
 def run_local(todo: list[tuple[Job, dict]], settings: BatchSettings) -> list[JobOutcome]:
+    """The jobs run on a local pool of ``workers`` threads, each job in its own subprocess with
+    its timeout (:func:`execute`), with a progress bar; one outcome per job."""
     outcomes = []
     with ThreadPoolExecutor(max_workers=max(1, settings.workers)) as pool, _progress(len(todo), "jobs") as bar:
         futures = {}
@@ -271,6 +285,9 @@ def check_versions(client) -> None:
 
 
 def run_cluster(todo: list[tuple[Job, dict]], settings: BatchSettings, client) -> list[JobOutcome]:
+    """The jobs run on a Dask cluster through ``client``: written by the workers into the shared
+    output folder, or (no shared storage) sent with their files and returned as tar bytes
+    unpacked here; a lost worker is one failed job."""
     from distributed import as_completed as dask_completed
 
     futures = {}
@@ -306,6 +323,8 @@ def _outcome(job: Job, res: dict, settings: BatchSettings) -> JobOutcome:
 
 
 def summary_frame(outcomes: list[JobOutcome]) -> pd.DataFrame:
+    """One row per job: status, error, wall time, run folder, convergence, observations,
+    and each free parameter's estimate, standard error and 95% interval ends."""
     rows = []
     for o in outcomes:
         row = {"job": o.job, "status": o.status, "error": o.error, "wall_s": o.wall_s, "run_folder": o.run_folder}

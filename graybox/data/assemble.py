@@ -107,6 +107,7 @@ class TagData:
 
 
 def iso(ns: int | None) -> str | None:
+    """An instant in UTC nanoseconds as ISO 8601 text to the microsecond (None stays None)."""
     if ns is None:
         return None
     return datetime.fromtimestamp(ns // 10**9, tz=timezone.utc).replace(
@@ -119,6 +120,7 @@ def iso_z(ns: int) -> str:
 
 
 def ns_to_datetime(ns: int) -> datetime:
+    """An instant in UTC nanoseconds as a timezone-aware ``datetime`` (microseconds kept)."""
     return datetime.fromtimestamp(ns // 10**9, tz=timezone.utc).replace(microsecond=(ns % 10**9) // 1000)
 
 
@@ -195,6 +197,9 @@ def _read_each(spec: DataSpec, vocab: QualityVocab, wanted: dict, text_time: boo
 
 
 def missing_tag_error(tg: TagSpec, spec: DataSpec, tables: dict[int, RawTable]) -> DataError:
+    """The DataError for a tag found in no column of an experiment's files, located at the
+    tag's name, with the closest column names (case-insensitive matches first) or the
+    columns the files do hold as the hint."""
     names = sorted({c for tb in tables.values() for c in tb.columns if c != tb.time_column})
     close = difflib.get_close_matches(tg.tag, names, n=3, cutoff=0.5)
     lower = [n for n in names if n.lower() == tg.tag.lower() and n not in close]
@@ -453,6 +458,8 @@ def _gaps_over(rows: np.ndarray, limit_s: float) -> tuple[Gap, ...]:
 
 # -- gaps, segments ----------------------------------------------------------------------------
 def merge_breaks(breaks: list[tuple[int, int]]) -> list[tuple[int, int]]:
+    """Overlapping or touching ``(start, end)`` intervals (any time unit, ends included)
+    merged into sorted disjoint ones."""
     out: list[list[int]] = []
     for a, b in sorted(breaks):
         if out and a <= out[-1][1]:
@@ -463,6 +470,8 @@ def merge_breaks(breaks: list[tuple[int, int]]) -> list[tuple[int, int]]:
 
 
 def segment_spans(start: int, end: int, breaks: list[tuple[int, int]]) -> list[tuple[int, int]]:
+    """The parts of ``[start, end]`` outside every break, in order: the record's segments
+    (same time unit as the arguments; a break touching an end may leave a zero-length part)."""
     spans, cur = [], start
     for a, b in merge_breaks(breaks):
         if b <= cur or a >= end:

@@ -208,6 +208,12 @@ class SymbolInfo:
 
 @dataclass(frozen=True)
 class TagSpec:
+    """One model symbol's tag, checked: which column (or long-table tag) feeds it, its role
+    (``input`` or ``output``), model and tag units (:class:`~graybox.data.units.TagUnits`),
+    hold mode, valid range, deadband, logging kind, per-tag quality column, gap and stuck
+    rules (seconds, ``"auto"``, ``inf`` = off, None = the experiment's) and the locations
+    used in messages."""
+
     symbol: str
     tag: str
     role: str
@@ -226,6 +232,10 @@ class TagSpec:
 
 @dataclass(frozen=True)
 class ReadOptions:
+    """How an experiment's files are read: format (None = by file ending), wide or long
+    layout, delimiter, decimal mark, encoding, header row and rows skipped after it, the
+    texts that mean "no value", the sheet, and the long layout's tag/value/quality columns."""
+
     file_format: str | None  # None = from each file's ending
     layout: str
     delimiter: str
@@ -242,6 +252,10 @@ class ReadOptions:
 
 @dataclass(frozen=True)
 class TimeSpec:
+    """The time column and how its stamps read: format (``iso``, ``local``, ``epoch_s``,
+    ``serial_1900``, ``serial_1904``, ``elapsed``), zone, date order, 12/24-hour clock, and
+    for elapsed time the declared unit and its length in seconds."""
+
     column: str | None
     format: str
     timezone: str | None
@@ -253,12 +267,18 @@ class TimeSpec:
 
 @dataclass(frozen=True)
 class SpikeSpec:
+    """The spike test: the running-median window (seconds) and the threshold, in robust
+    standard deviations from the running median (:func:`graybox.data.quality.spikes`)."""
+
     window: float  # seconds
     threshold: float
 
 
 @dataclass(frozen=True)
 class SearchSpec:
+    """The informative-window search: window length and step (seconds), how many windows
+    to keep, and per-output noise levels (model units) for the scores."""
+
     window: float
     step: float
     top: int
@@ -267,6 +287,11 @@ class SearchSpec:
 
 @dataclass(frozen=True)
 class DataSpec:
+    """One experiment's ``[data]`` table, validated (no file read yet): files, read options,
+    time axis, good-quality texts, tags, gap and stuck rules (seconds; ``"auto"``; ``inf`` =
+    off), select/exclude windows (UTC ns, half-open), holdout (fraction or instant), spike
+    and window-search settings, and the declared start (ns; None = the first stamp)."""
+
     name: str
     where: str
     files: tuple[Path, ...]
@@ -285,6 +310,7 @@ class DataSpec:
     start: int | None = None  # the declared start (UTC ns; elapsed ns for elapsed time); None = the data's first stamp
 
     def tag_of(self, symbol: str) -> TagSpec:
+        """The tag that feeds model symbol ``symbol`` (StopIteration if none does)."""
         return next(t for t in self.tags if t.symbol == symbol)
 
 

@@ -67,6 +67,7 @@ class GapRule:
 
     @property
     def active(self) -> bool:
+        """Whether the rule can find gaps (a finite limit; ``inf`` means off)."""
         return math.isfinite(self.limit_s)
 
 
@@ -116,10 +117,13 @@ class Gap:
 
     @property
     def duration_s(self) -> float:
+        """The gap's length in seconds."""
         return (self.end_ns - self.start_ns) / 1e9
 
 
 def gap_action(tag: TagSpec) -> str:
+    """What a gap does to a tag: an input's gap splits the record into segments (its value
+    is unknown there); an output's gap only leaves observations out."""
     return ACTION_SPLIT if tag.role == ROLE_INPUT else ACTION_NONE
 
 
@@ -155,6 +159,7 @@ class SilenceRule:
 
     @property
     def active(self) -> bool:
+        """Whether the rule can find silences (a finite ``after_s``; ``inf`` means off)."""
         return math.isfinite(self.after_s)
 
 

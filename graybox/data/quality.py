@@ -104,6 +104,7 @@ class StuckRule:
 
     @property
     def active(self) -> bool:
+        """Whether the rule can flag stuck runs (a finite limit; ``inf`` means off)."""
         return math.isfinite(self.limit_s)
 
 

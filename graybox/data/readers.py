@@ -56,15 +56,21 @@ def row_at(rows: Rows, i: int) -> int:
 
 
 def row_positions(rows: Rows) -> np.ndarray:
+    """The table row positions a ``Rows`` selection (slice-like range or index array) names, as an array."""
     return rows if isinstance(rows, np.ndarray) else np.arange(rows.start, rows.stop, rows.step)
 
 
 def row_count(rows: Rows) -> int:
+    """How many rows a ``Rows`` selection (slice-like range or index array) names."""
     return rows.size if isinstance(rows, np.ndarray) else len(range(rows.start, rows.stop, rows.step))
 
 
 @dataclass(frozen=True)
 class RawTable:
+    """One file as read, before conversion: its path, the word for its rows in messages
+    (``line`` or ``row``), each row's 1-based line/row number, the raw time column (None for
+    a static table), each tag's raw values, the columns it has and its time column."""
+
     path: Path
     word: str  # "line" or "row"
     numbers: np.ndarray  # 1-based line/row number of each table row
@@ -74,6 +80,7 @@ class RawTable:
     time_column: str | None
 
     def place(self, i: int, column: str) -> str:
+        """Where row ``i`` of ``column`` is, for messages: file, line/row number and column."""
         return f"{self.path} {self.word} {int(self.numbers[i])} column '{column}'"
 
 
@@ -96,6 +103,8 @@ def file_sha256(path: Path) -> str:
 
 
 def file_format(path: Path, opts: ReadOptions) -> str:
+    """The file's format: the declared one, else from its ending (``.parquet``/``.pq``
+    parquet, ``.xlsx``/``.xlsm`` excel, anything else csv)."""
     if opts.file_format:
         return opts.file_format
     suffix = path.suffix.lower()
@@ -314,12 +323,15 @@ class QualityVocab:
         self._index: dict[str, int] = {}
 
     def code(self, text: str) -> int:
+        """The code of a normalized quality text (numbered on first sight)."""
         if text not in self._index:
             self._index[text] = len(self.texts)
             self.texts.append(text)
         return self._index[text]
 
     def codes_of(self, col: pd.Series) -> np.ndarray:
+        """A quality column as int32 codes into :attr:`texts` (each distinct value normalized
+        once; a missing cell gets the code of the blank text)."""
         from graybox.data.config import normalize_quality
 
         from graybox.data.columns import text_codes, text_runs

@@ -109,6 +109,7 @@ class OutputSeries:
 
     @property
     def n_valid(self) -> int:
+        """How many samples the fit compares (the mask's true entries)."""
         return int(self.mask.sum())
 
 
@@ -124,6 +125,7 @@ class Segment:
             raise DataError(f"segment [{self.t_start}, {self.t_end}] is not a valid time span")
 
     def contains(self, t: np.ndarray) -> np.ndarray:
+        """Which times (s since the record's start, any shape) lie in the segment, ends included."""
         return (t >= self.t_start) & (t <= self.t_end)
 
 
@@ -163,6 +165,7 @@ class Record:
 
     @property
     def n_obs(self) -> int:
+        """The number of valid observations over every output."""
         return sum(o.n_valid for o in self.outputs.values())
 
     def with_outputs(self, outputs: Mapping[str, OutputSeries]) -> "Record":

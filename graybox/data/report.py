@@ -9,6 +9,11 @@ from typing import Any
 
 @dataclass(frozen=True)
 class TagReport:
+    """What loading did to one tag: rows read and blank cells over every file, first and
+    last stamps (UTC text), median sample interval and its interquartile spread (s),
+    coverage (% of the record's span outside this tag's gaps), samples used, and the
+    samples masked or flagged by reason."""
+
     symbol: str
     tag: str
     role: str
@@ -50,11 +55,14 @@ class TagReport:
 
     @property
     def masked_total(self) -> int:
+        """The samples masked, over every reason."""
         return sum(self.masked.values())
 
 
 @dataclass(frozen=True)
 class SegmentReport:
+    """One segment of the record: its number, UTC span, duration (s) and observations in it."""
+
     index: int
     start_utc: str
     end_utc: str
@@ -64,6 +72,11 @@ class SegmentReport:
 
 @dataclass(frozen=True)
 class DataReport:
+    """What loading an experiment found, for people: the files read (path, sha256), each
+    tag's report, the record's span and segments, the select/exclude windows and holdout,
+    problems that stop a fit (empty = it can run), notes, informative windows when ranked,
+    and where the experiment's start came from."""
+
     experiment: str
     sources: tuple[dict, ...]
     tags: tuple[TagReport, ...]
@@ -83,23 +96,29 @@ class DataReport:
 
     @property
     def ok(self) -> bool:
+        """Whether a fit can run on this data (no problems found)."""
         return not self.problems
 
     def tag(self, symbol: str) -> TagReport:
+        """The report of the tag that feeds model symbol ``symbol`` (StopIteration if none)."""
         return next(t for t in self.tags if t.symbol == symbol)
 
     def with_windows(self, windows) -> "DataReport":
+        """The same report with the informative windows (``WindowScore``) attached."""
         from dataclasses import replace
 
         return replace(self, windows=tuple(windows))
 
     def to_dict(self) -> dict:
+        """The report as plain values (JSON-ready), with ``ok`` and each window's dict form."""
         d = asdict(self)
         d["windows"] = [w.to_dict() if hasattr(w, "to_dict") else w for w in self.windows]
         d["ok"] = self.ok
         return d
 
     def summary(self) -> str:
+        """The report as the text ``graybox check`` prints: span, start, sources, a table of
+        tags, segments, windows, warnings and problems."""
         lines = [f"experiment '{self.experiment}': {self.start_utc or '?'} .. {self.end_utc or '?'} (UTC)"]
         if self.start_text:
             lines.append(f"  start: {self.start_text}; the initial state applies here")

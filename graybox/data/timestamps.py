@@ -72,6 +72,7 @@ class ClockChange:
 
     @property
     def back(self) -> bool:
+        """Whether the clocks went back (an hour of local stamps repeats)."""
         return self.offset_after_s < self.offset_before_s
 
     def named(self, file: str, names: list[str] | None) -> "ClockChange":
@@ -93,6 +94,7 @@ class ClockChange:
         return self._wall(self.offset_after_s)
 
     def resolution(self) -> str:
+        """How the stamps around the change were read, in words (the part of :meth:`warning` after the change)."""
         if self.back:
             span = f"{self.local_after[11:16]}-{self.local_before[11:16]}"
             if not self.rows:
@@ -111,6 +113,7 @@ class ClockChange:
         return f"{self.rows} stamps fell in the skipped hour {span}: they do not exist there and were masked"
 
     def warning(self) -> str:
+        """The warning a data report shows: file, zone, tags, local times and offsets, UTC instant and :meth:`resolution`."""
         where = f"{self.file}: " if self.file else ""
         tags = f" (tags {', '.join(self.tags)})" if self.tags else ""
         verb = "went back" if self.back else "went forward"
@@ -119,6 +122,7 @@ class ClockChange:
                 f"({_offset_text(self.offset_after_s)}), {_utc_text(self.utc_ns)}; {self.resolution()}")
 
     def to_dict(self) -> dict:
+        """The change as plain values for the run record (offsets and UTC as text)."""
         return {"file": self.file, "zone": self.zone, "utc": _utc_text(self.utc_ns),
                 "kind": "back" if self.back else "forward", "local_before": self.local_before,
                 "local_after": self.local_after, "offset_before": _offset_text(self.offset_before_s),
@@ -157,6 +161,7 @@ class Place:
     column: str
 
     def at(self, i: int) -> str:
+        """Where row ``i`` is, for messages: file, line/row number and column."""
         return f"{self.file} {self.word} {int(self.numbers[i])} column '{self.column}'"
 
 

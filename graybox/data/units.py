@@ -57,10 +57,12 @@ class Conversion:
         return out
 
     def apply_scalar(self, raw: float) -> float:
+        """One raw value in tag units converted to model units (``raw * scale + offset``)."""
         return float(raw) * self.scale + self.offset
 
     @property
     def identity(self) -> bool:
+        """Whether the conversion leaves values unchanged (scale 1, offset 0)."""
         return self.scale == 1.0 and self.offset == 0.0
 
 
@@ -101,6 +103,9 @@ def trade_names_hint() -> str:
 
 
 def parse_unit(text: str, where: str, whose: str) -> pint.Unit:
+    """A units text (blank = dimensionless) as a unit of the shared pint registry; a
+    ConfigError located at ``where`` naming ``whose`` units for an ambiguous word, a gauge
+    pressure or standard flow (tag units only), or text that is no unit."""
     ureg = registry()
     raw = (text or "").strip() or "dimensionless"
     for word in re.findall(r"[A-Za-z_]+", raw):

@@ -60,6 +60,12 @@ LOG_UNIFORM_SPAN = 100.0  # bounds spanning more than this factor are sampled lo
 
 @dataclass(frozen=True)
 class FitSettings:
+    """How a least-squares fit runs (the study's ``[estimate]`` and ``[noise]`` tables): each
+    output's given sigma (model units; None = estimated), the noise groups sharing one
+    estimated sigma, extra random starts, the evaluation budget, lmfit's x/f/g tolerances,
+    whether to polish the best start, the noise-level reweighting limit, and the seed of the
+    random starts (the study's seed)."""
+
     sigmas: dict[str, float | None] = field(default_factory=dict)  # output -> given sigma (None: estimate)
     groups: dict[str, tuple[str, ...]] = field(default_factory=dict)  # group -> outputs sharing one estimated sigma
     multistart: int = 0
@@ -74,6 +80,11 @@ class FitSettings:
 
 @dataclass
 class ParameterEstimate:
+    """One parameter's result, in its declared units: estimate, standard error and 95%
+    interval (Wald, with the result's quantile), whether it was fixed, which bound it sits
+    at (interval then one-sided), its guess and bounds, where the interval was cut at a
+    bound, and whether the data determine it at all (rank-deficient Jacobian: False)."""
+
     name: str
     estimate: float
     stderr: float
@@ -89,6 +100,7 @@ class ParameterEstimate:
     determined: bool = True  # False: the data do not determine it (rank-deficient Jacobian)
 
     def to_dict(self) -> dict:
+        """The ``results.json`` entry ``parameters.NAME`` (keys are a contract: add, never rename)."""
         return {
             "estimate": self.estimate,
             "stderr": self.stderr,
@@ -106,6 +118,13 @@ class ParameterEstimate:
 
 @dataclass
 class FitResult:
+    """A least-squares fit: free-value names and values ``x`` (n_free,), each parameter's
+    estimate, covariance and correlation (n_free, n_free), each output's sigma (model units)
+    and whether it was estimated, sums of squares overall and per output, observation
+    counts, log-likelihood, AIC and BIC, convergence, evaluations, Jacobian rank and
+    condition number, the multistart record, wall time (s), warnings, the interval quantile,
+    degrees of freedom, the noise groups and the noise-level iteration."""
+
     names: list[str]
     x: np.ndarray
     parameters: dict[str, ParameterEstimate]
@@ -135,6 +154,7 @@ class FitResult:
     reweighting: dict | None = None  # the noise-level iteration, when estimated sigmas change the weights
 
     def fit_dict(self) -> dict:
+        """The ``results.json`` section ``fit``: counts, sums of squares, information criteria, convergence."""
         return {
             "n_obs": self.n_obs,
             "n_free": self.n_free,
@@ -166,6 +186,8 @@ class FitResult:
         return None
 
     def noise_dict(self) -> dict:
+        """The ``results.json`` section ``noise``: per output its sigma (model units), whether it
+        was estimated, its observations and the noise group it shares the sigma with."""
         out = {}
         for o in self.sigmas:
             group = self.group_of(o)
@@ -176,6 +198,7 @@ class FitResult:
         return out
 
     def summary(self) -> str:
+        """The text ``graybox fit`` prints: status, the parameter table, noise levels and warnings."""
         from graybox.estimate.summary import fit_summary
 
         return fit_summary(self)

@@ -231,6 +231,7 @@ class Stationarity:
 
     @property
     def converged(self) -> bool:
+        """Whether the next step moves every free value by less than ``CONVERGED_STEP`` standard errors."""
         return self.measure < CONVERGED_STEP
 
 

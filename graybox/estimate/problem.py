@@ -45,11 +45,14 @@ def _safe_key(text: str) -> str:
 
 @dataclass
 class Experiment:
+    """One experiment of a problem: its name and the simulation timeline planned from its record."""
+
     name: str
     timeline: Timeline
 
     @property
     def record(self):
+        """The experiment's data (:class:`graybox.data.record.Record`) the timeline was planned from."""
         return self.timeline.record
 
 
@@ -100,20 +103,25 @@ class Problem:
 
     @property
     def names(self) -> list[str]:
+        """The free values' names, in the order of the free vector."""
         return [f.name for f in self.free]
 
     @property
     def n_free(self) -> int:
+        """The number of free values (parameters and estimated initial states)."""
         return len(self.free)
 
     @property
     def n_obs(self) -> int:
+        """The number of valid observations over every experiment and output."""
         return sum(self.n_obs_per_output.values())
 
     def guess(self) -> np.ndarray:
+        """The starting free vector, shape (n_free,)."""
         return np.array([f.guess for f in self.free])
 
     def bounds(self) -> tuple[np.ndarray, np.ndarray]:
+        """The lower and upper bounds of the free vector, each shape (n_free,) (may be infinite)."""
         return np.array([f.lower for f in self.free]), np.array([f.upper for f in self.free])
 
     # -- mapping free vectors to model arguments -----------------------------------------------
@@ -151,6 +159,9 @@ class Problem:
 
     # -- simulation ----------------------------------------------------------------------------
     def simulate(self, X: np.ndarray, sens: bool = False) -> list[SimResult]:
+        """Each experiment simulated at the free vectors ``X`` (n_free,) or (n_sets, n_free):
+        one :class:`~graybox.simulate.SimResult` per experiment, with forward sensitivities
+        when ``sens``."""
         out = []
         for e, ex in enumerate(self.experiments):
             theta, x0 = self.model_arguments(X, e)
@@ -215,6 +226,7 @@ class Problem:
         return np.vstack(blocks)
 
     def observed(self, e: int, output: str) -> np.ndarray:
+        """The measured values of ``output`` in experiment ``e`` (model units, valid samples only)."""
         return self._observed[e][output]
 
 

@@ -10,6 +10,10 @@ def _fmt(v: float) -> str:
 
 
 def fit_summary(res) -> str:
+    """A least-squares result (:class:`~graybox.estimate.fit.FitResult`) as text: status
+    line, the parameter table (estimate, standard error, 95% interval, units, notes), noise
+    levels and groups, SSE, log-likelihood and information criteria, the noise-level
+    iteration, strong correlations (|r| > 0.95) and warnings."""
     lines = []
     status = "converged" if res.converged else "NOT CONVERGED"
     lines.append(f"least squares: {status} ({res.message}); {res.n_obs} observations, {res.n_free} free values, "

@@ -24,13 +24,18 @@ class OutputTrace:
 
     @property
     def residual(self) -> np.ndarray:
+        """Measured minus fitted, model units, shape of ``t``."""
         return self.measured - self.fitted
 
     def utc(self) -> pd.DatetimeIndex:
+        """The trace's times as UTC timestamps (the record's start plus ``t`` seconds)."""
         return pd.Timestamp(self.start_utc) + pd.to_timedelta(self.t, unit="s")
 
 
 def fitted_table(traces: list[OutputTrace]) -> pd.DataFrame:
+    """The fitted traces as one long table: experiment, output, units, UTC and elapsed time (s),
+    measured, fitted and residual values, and each band's ``LABEL_lo`` / ``LABEL_hi`` columns
+    (prediction or credible bands, when sampled); one row per sample."""
     frames = []
     for tr in traces:
         df = pd.DataFrame({
@@ -51,6 +56,7 @@ def fitted_table(traces: list[OutputTrace]) -> pd.DataFrame:
 
 
 def write_fitted_csv(path: Path, traces: list[OutputTrace]) -> None:
+    """The fitted table (:func:`fitted_table`) written as CSV, floats to 10 significant digits."""
     fitted_table(traces).to_csv(path, index=False, float_format="%.10g")
 
 

@@ -25,6 +25,7 @@ RESULTS = "results.json"
 
 
 def sha256_file(path: Path, chunk: int = 1 << 20) -> str:
+    """The SHA-256 of a file's bytes as hex, read in ``chunk``-byte blocks."""
     h = hashlib.sha256()
     with open(path, "rb") as fh:
         while block := fh.read(chunk):
@@ -114,10 +115,13 @@ def _jsonable(value: Any) -> Any:
 
 
 def write_json(path: Path, data: dict) -> None:
+    """A document written as indented JSON (numpy values made plain; NaN and infinities as
+    null, since JSON has none)."""
     path.write_text(json.dumps(_jsonable(data), indent=2, allow_nan=False) + "\n", encoding="utf-8")
 
 
 def read_results(run_dir: Path) -> dict:
+    """A finished run folder's ``results.json``; a RunError if it is missing or not JSON."""
     path = Path(run_dir) / RESULTS
     try:
         return json.loads(path.read_text(encoding="utf-8"))
