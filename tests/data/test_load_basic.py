@@ -130,7 +130,7 @@ def test_local_and_serial_need_a_timezone(tmp_path):
 
 def test_quartiles_match_numpy_percentile():
     # reference: numpy.percentile's default (linear) method, a general-purpose library
-    from graybox.data.assemble import quartiles
+    from graybox.data.tags import quartiles
 
     rng = np.random.default_rng(3)
     for x in (rng.integers(0, 10**12, 1001), np.full(7, 5, np.int64), np.array([3, 1]), np.array([9]),
