@@ -47,19 +47,19 @@ def residual_checks(layout: NoiseLayout, residuals: list[dict[str, np.ndarray]],
     """Warnings (text) where the residuals at the posterior median contradict the noise model
     (each noise kind's ``checks``, on every experiment's residuals in turn).
 
-    ``natural_noise``: output -> (sigma, phi, nu) at the posterior median (None when absent);
+    ``natural_noise``: output -> its noise values at the posterior median (:meth:`NoiseLayout.at`);
     ``residuals``: per experiment {output: residual vector}."""
     out = []
     for o in outputs:
         m = layout.model(o)
-        sigma, phi, nu = natural_noise[o]
+        v = natural_noise[o]
         pieces, pairs, whitened = [], [], []
         for e, res in enumerate(residuals):
-            w, pair = m.family.whitened(m, layout.spacing.get(o), e, res[o], phi)
+            w, pair = m.family.whitened(m, layout.spacing.get(o), e, res[o], v)
             pieces.append(res[o])
             pairs.append(pair)
             whitened.append(w)
-        out += m.family.checks(m, np.concatenate(pieces), np.concatenate(whitened), np.concatenate(pairs), sigma, nu)
+        out += m.family.checks(m, np.concatenate(pieces), np.concatenate(whitened), np.concatenate(pairs), v)
     return out
 
 

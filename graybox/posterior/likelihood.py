@@ -35,12 +35,12 @@ class LogPosterior:
         bounds = [p.sampled_bounds() for p in self.priors] + [(p.lower, p.upper) for p in self.layout.params]
         self._lo = np.array([b[0] for b in bounds], float)
         self._hi = np.array([b[1] for b in bounds], float)
-        self._upper_open = np.array([False] * self.n_free + [p.what == "phi" for p in self.layout.params])
+        self._upper_open = np.array([False] * self.n_free + [p.upper_open for p in self.layout.params])
         self._log_free = np.array([p.log_scale for p in self.priors], bool)
         self._shaped = [j for j, p in enumerate(self.priors) if p.shaped]
-        self._log_noise = np.array([p.what != "phi" for p in self.layout.params], bool)
+        self._log_noise = np.array([p.log for p in self.layout.params], bool)
         self._sums_suffice = self.layout.sums_suffice
-        self._nu_cols = [self.n_free + k for k, p in enumerate(self.layout.params) if p.what == "log_nu"]
+        self._shaped_noise = [self.n_free + k for k, p in enumerate(self.layout.params) if p.density is not None]
 
     @property
     def n_free(self) -> int:
@@ -91,7 +91,7 @@ class LogPosterior:
         for j in self._shaped:
             p = self.priors[j]
             total = total + p.log_density(p.from_sampled(Zi[:, j]))
-        for c in self._nu_cols:
+        for c in self._shaped_noise:
             total = total + self.layout.params[c - self.n_free].log_prior(Zi[:, c])
         lp[inside] = total
         return lp
@@ -120,7 +120,7 @@ class LogPosterior:
         ll = np.zeros(X.shape[0])
         with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
             for r, o in enumerate(self.problem.spec.output_names):
-                sigma, _, _ = self.layout.values(N, o)
+                sigma = self.layout.values(N, o)["sigma"]
                 for e, sse in enumerate(sums):
                     n = self._observed[e][o].size
                     ll = ll - 0.5 * n * np.log(2 * np.pi * sigma**2) - 0.5 * sse[:, r] / sigma**2

@@ -38,6 +38,9 @@ from graybox.posterior.noise_kinds.gaussian import loglik_gaussian
 from graybox.posterior.noise_kinds.student_t import loglik_student
 
 
+SIGMA_PRIOR = "p(sigma) ~ 1/sigma (flat in ln sigma)"
+
+
 @dataclass(frozen=True)
 class NoiseModel:
     """The noise model of one output, validated; its behaviour is its kind's (:attr:`family`)."""
@@ -115,10 +118,10 @@ def noise_params(models: list[NoiseModel]) -> list[NoiseParam]:
     seen_groups: set[str] = set()
     for m in models:
         if m.sigma is None and m.group is None:
-            out.append(NoiseParam(f"sigma[{m.output}]", m.output, "log_sigma", -math.inf, math.inf))
+            out.append(NoiseParam(f"sigma[{m.output}]", m.output, "sigma", True, -math.inf, math.inf, SIGMA_PRIOR))
         elif m.sigma is None and m.group not in seen_groups:
             seen_groups.add(m.group)
-            out.append(NoiseParam(f"sigma[{m.group}]", m.output, "log_sigma", -math.inf, math.inf,
+            out.append(NoiseParam(f"sigma[{m.group}]", m.output, "sigma", True, -math.inf, math.inf, SIGMA_PRIOR,
                                   shared=m.shared_with))
         out += m.family.sampled(m)
     return out
@@ -153,24 +156,22 @@ class NoiseLayout:
                 return m
         raise KeyError(output)
 
-    def values(self, N: np.ndarray, output: str) -> tuple[np.ndarray, np.ndarray | None, np.ndarray | None]:
-        """sigma, phi, nu per set (natural units) from the sampled noise columns N (n_sets, n_noise)."""
+    def values(self, N: np.ndarray, output: str) -> dict[str, np.ndarray]:
+        """The noise values of ``output`` per set, natural units, by key ("sigma" and its
+        kind's own, e.g. "phi", "nu"; a key is absent when the model has no such value):
+        given ones from the model, sampled ones from the noise columns N (n_sets, n_noise)."""
         m = self.model(output)
         n_sets = N.shape[0]
-        sigma = np.full(n_sets, m.sigma if m.sigma is not None else np.nan)
-        phi = np.full(n_sets, m.phi) if m.phi is not None else None
-        nu = np.full(n_sets, m.dof) if m.dof is not None else None
+        v = {"sigma": np.full(n_sets, m.sigma if m.sigma is not None else np.nan)}
+        v.update({key: np.full(n_sets, value) for key, value in m.family.given_values(m).items()})
         for k, p in enumerate(self.params):
-            if not p.applies_to(output):
-                continue
-            v = p.to_natural(N[:, k])
-            if p.what == "log_sigma":
-                sigma = v
-            elif p.what == "phi":
-                phi = v
-            else:
-                nu = v
-        return sigma, phi, nu
+            if p.applies_to(output):
+                v[p.key] = p.to_natural(N[:, k])
+        return v
+
+    def at(self, n: np.ndarray, output: str) -> dict[str, float]:
+        """:meth:`values` at one row ``n`` of noise columns, as floats."""
+        return {key: float(a[0]) for key, a in self.values(np.atleast_2d(n), output).items()}
 
     def log_prior(self, N: np.ndarray) -> np.ndarray:
         """Sum of the noise parameters' log priors (sampled space) per row of N."""
@@ -182,15 +183,18 @@ class NoiseLayout:
     def loglik(self, output: str, e: int, R: np.ndarray, N: np.ndarray) -> np.ndarray:
         """Log-likelihood of the residuals R (n_sets, n_used) of ``output`` in experiment ``e``."""
         m = self.model(output)
-        sigma, phi, nu = self.values(N, output)
-        return m.family.loglik(m, self.spacing.get(output), e, R, sigma, phi, nu)
+        return m.family.loglik(m, self.spacing.get(output), e, R, self.values(N, output))
 
     def simulate(self, output: str, e: int, N: np.ndarray, rng: np.random.Generator, n: int) -> np.ndarray:
         """Draws (n_sets, n) of the error process of ``output`` in experiment ``e``, one per
         row of N (the sets' sampled noise columns)."""
         m = self.model(output)
-        sigma, phi, nu = self.values(N, output)
-        return m.family.simulate(m, self.spacing.get(output), e, sigma, phi, nu, rng, n)
+        return m.family.simulate(m, self.spacing.get(output), e, self.values(N, output), rng, n)
+
+    def start(self, p: NoiseParam, residuals: list[dict[str, np.ndarray]]) -> tuple[float, float]:
+        """Centre and sd of the starting ball of a kind's own sampled parameter ``p``."""
+        m = self.model(p.output)
+        return m.family.start(m, self.spacing.get(p.output), p, [r[p.output] for r in residuals])
 
     def entries(self, m: NoiseModel) -> dict:
         """The kind's keys of ``m``'s results.json entry."""

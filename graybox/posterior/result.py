@@ -135,8 +135,7 @@ class PosteriorResult:
             post = {}
             for p in self.layout.params:
                 if p.applies_to(m.output):  # its own, or its noise group's shared sigma
-                    key = {"log_sigma": "sigma", "phi": "phi", "log_nu": "nu"}[p.what]
-                    post[key] = {**self.stats[p.name], "prior": p.describe()}
+                    post[p.key] = {**self.stats[p.name], "prior": p.describe()}
             entry["posterior"] = post
             entry["warnings"] = [w for w in self.warnings if w.startswith(f"{m.output}:")]
             out[m.output] = entry
@@ -217,7 +216,7 @@ class PosteriorResult:
         """samples.npz: chain (walker x step x quantity, natural units), log_prob (walker x
         step), names, n_free, burn_in, thin, converged, and which quantities were sampled in
         log space."""
-        log_sampled = [p.log_scale for p in self.priors] + [p.what != "phi" for p in self.layout.params]
+        log_sampled = [p.log_scale for p in self.priors] + [p.log for p in self.layout.params]
         np.savez_compressed(
             Path(path), chain=self.chain, log_prob=self.log_prob, names=np.array(self.names, dtype=str),
             n_free=np.int64(self.n_free), burn_in=np.int64(self.burn_in), thin=np.int64(self.thin),

@@ -188,11 +188,8 @@ def run_posterior(problem: Problem, fit_result: FitResult, noise: dict, settings
     _, thin = burn_and_thin(check.tau, chain.shape[1])
     stats = {name: quantity_stats(chain[:, burn:, d], check, d, converged) for d, name in enumerate(post.names)}
     med = np.median(chain[:, burn:, :].reshape(-1, n_dim), axis=0)
-    natural_noise = {}
-    for m in layout.models:
-        s, ph, nu = layout.values(post.sampled(med[None, :])[:, post.n_free:], m.output)
-        natural_noise[m.output] = (float(s[0]), None if ph is None else float(ph[0]),
-                                   None if nu is None else float(nu[0]))
+    med_noise = post.sampled(med[None, :])[:, post.n_free:]
+    natural_noise = {m.output: layout.at(med_noise, m.output) for m in layout.models}
     warnings = residual_checks(layout, post.residuals(med[: post.n_free]), natural_noise, problem.spec.output_names)
     if not converged:
         warnings.insert(0, "the sampler stopped at its step limit before converging: the posterior summaries are "

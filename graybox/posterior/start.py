@@ -4,8 +4,9 @@ Walkers start in a small ball around the least-squares optimum, N(x_hat, (0.1)^2
 sampled space (C: the least-squares covariance, mapped through the log transform),
 reflected back into the prior's support and clipped; when C is singular or missing a
 diagonal ball of relative size 1e-3 is used instead (the sampler dictionary says which).
-Noise parameters start at the least-squares sigma (ln sigma, sd 1/sqrt(2n)), the residuals'
-lag-one correlation (phi) and nu = 10.  Walkers whose log-posterior is not finite are
+Noise parameters start at the least-squares sigma (ln sigma, sd 1/sqrt(2n)); a noise kind's
+own parameters where the kind says (AR(1): the residuals' lag-one correlation; Student-t:
+nu = 10).  Walkers whose log-posterior is not finite are
 redrawn, then refused with a located error.
 """
 
@@ -18,9 +19,7 @@ import numpy as np
 
 from graybox.errors import SampleError
 from graybox.estimate.fit import FitResult
-from graybox.posterior.checks import lag_one
 from graybox.posterior.likelihood import LogPosterior
-from graybox.posterior.noise import NoiseLayout
 
 START_SCALE = 0.1  # ball radius in least-squares standard deviations
 FALLBACK_REL = 1e-3  # relative ball size when the covariance is singular
@@ -52,17 +51,12 @@ def start_distribution(post: LogPosterior, fit_result: FitResult) -> Start:
     noise_sd = np.empty(n_dim - n_free)
     residuals = post.residuals(x)
     for k, p in enumerate(post.layout.params):
-        n_o = sum(r[p.output].size for r in residuals)
-        if p.what == "log_sigma":
+        if p.key == "sigma":  # every kind's scale; a kind's own parameters start where the kind says
+            n_o = sum(r[p.output].size for r in residuals)
             centre[n_free + k] = math.log(max(fit_result.sigmas[p.output], 1e-300))
             noise_sd[k] = 1.0 / math.sqrt(2.0 * n_o)
-        elif p.what == "phi":
-            phi = _phi_guess(post.layout, p.output, residuals)
-            centre[n_free + k] = phi
-            noise_sd[k] = max(math.sqrt((1 - phi**2) / n_o), 1e-3)
         else:
-            centre[n_free + k] = math.log(10.0)
-            noise_sd[k] = 0.2
+            centre[n_free + k], noise_sd[k] = post.layout.start(p, residuals)
     cov = np.zeros((n_dim, n_dim))
     cov[:n_free, :n_free] = cov_free
     cov[n_free:, n_free:] = np.diag(noise_sd**2)
@@ -77,16 +71,8 @@ def _is_pd(c: np.ndarray) -> bool:
     return bool(np.all(np.diag(c) > 0))
 
 
-def _phi_guess(layout: NoiseLayout, output: str, residuals: list[dict]) -> float:
-    """Lag-one correlation of the least-squares residuals (at the reference spacing), in (0, 1)."""
-    plan = layout.spacing[output]
-    r = np.concatenate([res[output] for res in residuals])
-    pair = np.concatenate([plan.ratio[e] > 0 for e in range(len(residuals))])
-    r1 = lag_one(r, pair)
-    return float(np.clip(r1 if np.isfinite(r1) else 0.5, 0.02, 0.98))
-
-
 def sampled_bounds(post: LogPosterior) -> tuple[np.ndarray, np.ndarray]:
+    """Lower and upper bounds of every sampled quantity, in the sampled space."""
     lo = [p.sampled_bounds()[0] for p in post.priors] + [p.lower for p in post.layout.params]
     hi = [p.sampled_bounds()[1] for p in post.priors] + [p.upper for p in post.layout.params]
     return np.array(lo, float), np.array(hi, float)

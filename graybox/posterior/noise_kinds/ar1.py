@@ -15,13 +15,14 @@ sampled, uniform on [0, 1).
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
 
 from graybox.configkit import Table, parse_duration
 from graybox.errors import ConfigError, SampleError
-from graybox.posterior.checks import correlated_innovations, given_sigma_mismatch, negative_correlation
+from graybox.posterior.checks import correlated_innovations, given_sigma_mismatch, lag_one, negative_correlation
 from graybox.posterior.noise_kinds.base import NoiseParam, checked_number, option_error
 
 GAP_FACTOR = 10.0  # a spacing above this many reference spacings restarts the AR(1) process
@@ -149,30 +150,45 @@ class AR1:
         """phi, unless ``phi`` or ``error_time_constant`` is given."""
         if m.phi is not None or m.tau_e is not None:
             return []
-        return [NoiseParam(f"phi[{m.output}]", m.output, "phi", 0.0, PHI_UPPER)]
+        return [NoiseParam(f"phi[{m.output}]", m.output, "phi", False, 0.0, PHI_UPPER, "uniform on [0, 1)",
+                           upper_open=True)]
+
+    def given_values(self, m) -> dict:
+        """A given phi (an error time constant enters the lag coefficients directly)."""
+        return {} if m.phi is None else {"phi": m.phi}
+
+    def start(self, m, plan: SpacingPlan, p: NoiseParam, residuals: list[np.ndarray]) -> tuple[float, float]:
+        """phi at the residuals' lag-one correlation (in (0.02, 0.98); 0.5 when it cannot be
+        estimated), sd sqrt((1 - phi^2) / n), at least 1e-3."""
+        r = np.concatenate(residuals)
+        pair = np.concatenate([plan.ratio[e] > 0 for e in range(len(residuals))])
+        r1 = lag_one(r, pair)
+        phi = float(np.clip(r1 if np.isfinite(r1) else 0.5, 0.02, 0.98))
+        return phi, max(math.sqrt((1 - phi**2) / r.size), 1e-3)
 
     def plan(self, problem, output: str) -> SpacingPlan:
         """The spacings of the output's compared observations."""
         return spacing_plan(problem, output)
 
-    def loglik(self, m, plan: SpacingPlan, e: int, R: np.ndarray, sigma, phi, nu) -> np.ndarray:
+    def loglik(self, m, plan: SpacingPlan, e: int, R: np.ndarray, v: dict) -> np.ndarray:
         """:func:`loglik_ar1` with the experiment's lag coefficients."""
-        return loglik_ar1(R, sigma, plan.lag_coefficients(e, phi, m.tau_e))
+        return loglik_ar1(R, v["sigma"], plan.lag_coefficients(e, v.get("phi"), m.tau_e))
 
-    def whitened(self, m, plan: SpacingPlan, e: int, r: np.ndarray, phi) -> tuple[np.ndarray, np.ndarray]:
+    def whitened(self, m, plan: SpacingPlan, e: int, r: np.ndarray, v: dict) -> tuple[np.ndarray, np.ndarray]:
         """The standardised innovations; pairs within one run of the process."""
+        phi = v.get("phi")
         pj = plan.lag_coefficients(e, None if phi is None else np.array([phi]), m.tau_e)
         return innovations(r[None, :], pj)[0], plan.ratio[e] > 0
 
-    def simulate(self, m, plan: SpacingPlan, e: int, sigma, phi, nu, rng: np.random.Generator, n: int) -> np.ndarray:
+    def simulate(self, m, plan: SpacingPlan, e: int, v: dict, rng: np.random.Generator, n: int) -> np.ndarray:
         """:func:`simulate_ar1` with the experiment's lag coefficients."""
-        return self.draw(sigma, rng, n, phi_j=plan.lag_coefficients(e, phi, m.tau_e))
+        return self.draw(v["sigma"], rng, n, phi_j=plan.lag_coefficients(e, v.get("phi"), m.tau_e))
 
     def draw(self, sigma, rng: np.random.Generator, n: int, phi_j=None, nu=None) -> np.ndarray:
         """:func:`simulate_ar1` with lag coefficients ``phi_j``."""
         return simulate_ar1(sigma, rng, n, phi_j)
 
-    def checks(self, m, r: np.ndarray, w: np.ndarray, pair: np.ndarray, sigma, nu) -> list[str]:
+    def checks(self, m, r: np.ndarray, w: np.ndarray, pair: np.ndarray, v: dict) -> list[str]:
         """Innovations still correlated, negatively correlated residuals, a given sigma far
         from the scatter."""
         return [*correlated_innovations(m.output, w, pair), *negative_correlation(m.output, r, pair),

@@ -13,26 +13,37 @@ kind's name.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Protocol
+from typing import Callable, Protocol
 
 import numpy as np
 
 from graybox.configkit import Table
 from graybox.errors import ConfigError, SampleError
 
-NU_GAMMA_SHAPE, NU_GAMMA_RATE = 2.0, 0.1
+LogDensity = Callable[[np.ndarray], np.ndarray]
 
 
 @dataclass(frozen=True)
 class NoiseParam:
-    """One sampled noise parameter."""
+    """One sampled noise parameter: its name, the output it belongs to, the natural quantity
+    it is (``key``: "sigma", or a kind's own, e.g. "phi", "nu"), whether it is sampled as its
+    logarithm, its bounds in the sampled space and its prior (flat there unless ``density``)."""
 
-    name: str  # e.g. "sigma[T]"; the sampled value is its transform (see ``what``)
+    name: str  # e.g. "sigma[T]"
     output: str
-    what: str  # "log_sigma", "phi" or "log_nu"
+    key: str  # the natural quantity: "sigma", "phi", "nu", ...
+    log: bool  # sampled as ln(value)
     lower: float  # in the sampled space
     upper: float
+    prior: str  # the prior, in words
+    density: LogDensity | None = None  # sampled-space log density (Jacobian included) inside the bounds; None: flat
+    upper_open: bool = False  # the upper bound itself is outside the support
     shared: tuple[str, ...] = ()  # further outputs whose sigma this is (a noise group; ``output`` is its first)
+
+    @property
+    def what(self) -> str:
+        """The sampled quantity: "log_sigma", "phi", "log_nu", ..."""
+        return f"log_{self.key}" if self.log else self.key
 
     def applies_to(self, output: str) -> bool:
         """Whether this parameter belongs to ``output`` (its own, or its group's shared sigma)."""
@@ -40,36 +51,29 @@ class NoiseParam:
 
     def to_natural(self, z: np.ndarray) -> np.ndarray:
         """Natural value (sigma, phi, nu) from the sampled one."""
-        return np.exp(z) if self.what in ("log_sigma", "log_nu") else np.asarray(z, float)
+        return np.exp(z) if self.log else np.asarray(z, float)
 
     def to_sampled(self, v: np.ndarray) -> np.ndarray:
         """Sampled value from the natural one (inverse of :meth:`to_natural`)."""
-        return np.log(v) if self.what in ("log_sigma", "log_nu") else np.asarray(v, float)
+        return np.log(v) if self.log else np.asarray(v, float)
 
     def log_prior(self, z: np.ndarray) -> np.ndarray:
         """Log prior density in the sampled space (Jacobian included), -inf outside."""
         z = np.asarray(z, float)
         inside = (z >= self.lower) & (z < self.upper) & np.isfinite(z)
-        if self.what == "log_nu":
-            nu = np.exp(np.clip(z, -50, 50))
-            # Gamma(2, 0.1) density of nu: (shape - 1) ln nu - rate nu; plus the Jacobian z
-            lp = (NU_GAMMA_SHAPE - 1.0) * z - NU_GAMMA_RATE * nu + z
-        else:
-            lp = np.zeros_like(z)
+        lp = np.zeros_like(z) if self.density is None else self.density(z)
         return np.where(inside, lp, -np.inf)
 
     def describe(self) -> str:
         """The prior, in words."""
-        return {"log_sigma": "p(sigma) ~ 1/sigma (flat in ln sigma)",
-                "phi": "uniform on [0, 1)",
-                "log_nu": "nu ~ Gamma(2, rate 0.1) on [1, 1000]"}[self.what]
+        return self.prior
 
 
 class NoiseKind(Protocol):
     """What a noise kind provides.  ``m`` is the output's validated
     :class:`graybox.posterior.noise.NoiseModel`; ``plan`` what :meth:`plan` built for it (None
-    for kinds that need none); ``sigma``, ``phi``, ``nu``: per parameter set (n_sets,), None
-    when the kind has no such parameter."""
+    for kinds that need none); ``v``: the noise values by key ("sigma" and the kind's own,
+    given or sampled), per parameter set (n_sets,) or, at the posterior median, floats."""
 
     name: str  # the value of ``kind`` in [noise.OUTPUT]
     options: tuple[str, ...]  # the keys of [noise.OUTPUT] it takes besides sigma, kind (and group)
@@ -78,29 +82,37 @@ class NoiseKind(Protocol):
     def given(self, t: Table) -> dict:
         """Its options from the output's table, validated: NoiseModel fields (phi, tau_e, dof)."""
 
+    def given_values(self, m) -> dict:
+        """Its noise values fixed by the study (key -> value), e.g. a given phi."""
+
     def sampled(self, m) -> list[NoiseParam]:
         """Its sampled parameters beyond sigma, in layout order."""
+
+    def start(self, m, plan, p: NoiseParam, residuals: list[np.ndarray]) -> tuple[float, float]:
+        """Centre and standard deviation (sampled space) of the starting ball of its sampled
+        parameter ``p``, from the least-squares residuals of each experiment."""
 
     def plan(self, problem, output: str):
         """What it needs from the problem for this output (None when nothing)."""
 
-    def loglik(self, m, plan, e: int, R: np.ndarray, sigma, phi, nu) -> np.ndarray:
+    def loglik(self, m, plan, e: int, R: np.ndarray, v: dict) -> np.ndarray:
         """Log-likelihood of residuals R (n_sets, n_used) of experiment ``e``, per set."""
 
-    def whitened(self, m, plan, e: int, r: np.ndarray, phi) -> tuple[np.ndarray, np.ndarray]:
+    def whitened(self, m, plan, e: int, r: np.ndarray, v: dict) -> tuple[np.ndarray, np.ndarray]:
         """The residual vector ``r`` of experiment ``e`` made independent under the model (in
         sigma units up to a factor), and the flags of consecutive pairs within one run."""
 
-    def simulate(self, m, plan, e: int, sigma, phi, nu, rng: np.random.Generator, n: int) -> np.ndarray:
+    def simulate(self, m, plan, e: int, v: dict, rng: np.random.Generator, n: int) -> np.ndarray:
         """Draws of the error process (n_sets, n) for experiment ``e``, for prediction bands."""
 
     def draw(self, sigma, rng: np.random.Generator, n: int, phi_j=None, nu=None) -> np.ndarray:
         """Draws (n_sets, n) with the parameters resolved per observation: ``phi_j`` the AR(1)
-        lag coefficients, ``nu`` the degrees of freedom (each used by its kind only)."""
+        lag coefficients, ``nu`` the degrees of freedom (each used by its kind only; for
+        :func:`graybox.posterior.noise.simulate_errors`)."""
 
-    def checks(self, m, r: np.ndarray, w: np.ndarray, pair: np.ndarray, sigma, nu) -> list[str]:
+    def checks(self, m, r: np.ndarray, w: np.ndarray, pair: np.ndarray, v: dict) -> list[str]:
         """Warnings where the residuals ``r`` (whitened ``w``) at the posterior median
-        contradict the model; ``sigma``, ``nu`` at the median (floats or None)."""
+        contradict the model; ``v`` at the median."""
 
     def describe(self, m, sig: str) -> str:
         """The model in words; ``sig`` says how sigma is known."""

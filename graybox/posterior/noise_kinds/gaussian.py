@@ -27,34 +27,42 @@ class Gaussian:
         """No options."""
         return {}
 
+    def given_values(self, m) -> dict:
+        """None beyond sigma."""
+        return {}
+
     def sampled(self, m) -> list[NoiseParam]:
         """Nothing beyond sigma."""
         return []
+
+    def start(self, m, plan, p: NoiseParam, residuals: list[np.ndarray]) -> tuple[float, float]:
+        """Never called: it samples nothing of its own."""
+        raise ValueError(p.name)
 
     def plan(self, problem, output: str):
         """Nothing needed."""
         return None
 
-    def loglik(self, m, plan, e: int, R: np.ndarray, sigma, phi, nu) -> np.ndarray:
+    def loglik(self, m, plan, e: int, R: np.ndarray, v: dict) -> np.ndarray:
         """:func:`loglik_gaussian`."""
-        return loglik_gaussian(R, sigma)
+        return loglik_gaussian(R, v["sigma"])
 
-    def whitened(self, m, plan, e: int, r: np.ndarray, phi) -> tuple[np.ndarray, np.ndarray]:
+    def whitened(self, m, plan, e: int, r: np.ndarray, v: dict) -> tuple[np.ndarray, np.ndarray]:
         """The residuals themselves."""
         return r, independent_pairs(r)
 
-    def simulate(self, m, plan, e: int, sigma, phi, nu, rng: np.random.Generator, n: int) -> np.ndarray:
+    def simulate(self, m, plan, e: int, v: dict, rng: np.random.Generator, n: int) -> np.ndarray:
         """:meth:`draw`."""
-        return self.draw(sigma, rng, n)
+        return self.draw(v["sigma"], rng, n)
 
     def draw(self, sigma, rng: np.random.Generator, n: int, phi_j=None, nu=None) -> np.ndarray:
         """sigma times standard normal draws."""
         sigma = np.asarray(sigma, float).reshape(-1, 1)
         return sigma * rng.standard_normal((sigma.shape[0], n))
 
-    def checks(self, m, r: np.ndarray, w: np.ndarray, pair: np.ndarray, sigma, nu) -> list[str]:
+    def checks(self, m, r: np.ndarray, w: np.ndarray, pair: np.ndarray, v: dict) -> list[str]:
         """Correlated residuals, outliers, a given sigma far from the scatter."""
-        return [*correlated_errors(m.output, r, pair), *outliers(m.output, r, sigma), *given_sigma_mismatch(m, r)]
+        return [*correlated_errors(m.output, r, pair), *outliers(m.output, r, v["sigma"]), *given_sigma_mismatch(m, r)]
 
     def describe(self, m, sig: str) -> str:
         """In words."""

@@ -17,6 +17,14 @@ from graybox.posterior.checks import correlated_errors, large_dof
 from graybox.posterior.noise_kinds.base import NoiseParam, checked_number, independent_pairs, option_error
 
 NU_BOUNDS = (1.0, 1000.0)
+NU_GAMMA_SHAPE, NU_GAMMA_RATE = 2.0, 0.1
+
+
+def log_nu_prior(z: np.ndarray) -> np.ndarray:
+    """Log density of z = ln nu for nu ~ Gamma(2, rate 0.1): (shape - 1) ln nu - rate nu,
+    plus the Jacobian z (up to a constant)."""
+    nu = np.exp(np.clip(z, -50, 50))
+    return (NU_GAMMA_SHAPE - 1.0) * z - NU_GAMMA_RATE * nu + z
 
 
 def loglik_student(R: np.ndarray, sigma: np.ndarray, nu: np.ndarray) -> np.ndarray:
@@ -49,23 +57,32 @@ class StudentT:
         """ln nu, unless ``dof`` is given."""
         if m.dof is not None:
             return []
-        return [NoiseParam(f"nu[{m.output}]", m.output, "log_nu", math.log(NU_BOUNDS[0]), math.log(NU_BOUNDS[1]))]
+        return [NoiseParam(f"nu[{m.output}]", m.output, "nu", True, math.log(NU_BOUNDS[0]), math.log(NU_BOUNDS[1]),
+                           "nu ~ Gamma(2, rate 0.1) on [1, 1000]", density=log_nu_prior)]
+
+    def given_values(self, m) -> dict:
+        """The given degrees of freedom."""
+        return {} if m.dof is None else {"nu": m.dof}
+
+    def start(self, m, plan, p: NoiseParam, residuals: list[np.ndarray]) -> tuple[float, float]:
+        """ln nu around ln 10, sd 0.2."""
+        return math.log(10.0), 0.2
 
     def plan(self, problem, output: str):
         """Nothing needed."""
         return None
 
-    def loglik(self, m, plan, e: int, R: np.ndarray, sigma, phi, nu) -> np.ndarray:
+    def loglik(self, m, plan, e: int, R: np.ndarray, v: dict) -> np.ndarray:
         """:func:`loglik_student`."""
-        return loglik_student(R, sigma, nu)
+        return loglik_student(R, v["sigma"], v["nu"])
 
-    def whitened(self, m, plan, e: int, r: np.ndarray, phi) -> tuple[np.ndarray, np.ndarray]:
+    def whitened(self, m, plan, e: int, r: np.ndarray, v: dict) -> tuple[np.ndarray, np.ndarray]:
         """The residuals themselves."""
         return r, independent_pairs(r)
 
-    def simulate(self, m, plan, e: int, sigma, phi, nu, rng: np.random.Generator, n: int) -> np.ndarray:
+    def simulate(self, m, plan, e: int, v: dict, rng: np.random.Generator, n: int) -> np.ndarray:
         """:meth:`draw`."""
-        return self.draw(sigma, rng, n, nu=nu)
+        return self.draw(v["sigma"], rng, n, nu=v["nu"])
 
     def draw(self, sigma, rng: np.random.Generator, n: int, phi_j=None, nu=None) -> np.ndarray:
         """sigma times standard Student-t draws of nu degrees of freedom."""
@@ -73,9 +90,9 @@ class StudentT:
         nu = np.asarray(nu, float).reshape(-1, 1)
         return sigma * rng.standard_t(np.broadcast_to(nu, (sigma.shape[0], n)))
 
-    def checks(self, m, r: np.ndarray, w: np.ndarray, pair: np.ndarray, sigma, nu) -> list[str]:
+    def checks(self, m, r: np.ndarray, w: np.ndarray, pair: np.ndarray, v: dict) -> list[str]:
         """Correlated residuals; a sampled nu so large that Gaussian errors would do."""
-        return [*correlated_errors(m.output, r, pair), *large_dof(m, nu)]
+        return [*correlated_errors(m.output, r, pair), *large_dof(m, v.get("nu"))]
 
     def describe(self, m, sig: str) -> str:
         """In words."""
