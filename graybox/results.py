@@ -20,7 +20,7 @@ import pandas as pd
 
 from graybox.data.report import DataReport
 from graybox.errors import GrayboxError
-from graybox.estimate.fit import FitResult, ParameterEstimate
+from graybox.estimate.result import FitResult, ParameterEstimate
 from graybox.posterior.sample import PosteriorResult
 from graybox.runs.artifacts import OutputTrace, fitted_table
 from graybox.stages import Echo, Prepared, RunClock, quiet, traces_for, validation_text

@@ -21,7 +21,7 @@ from graybox.data.config import DataSpec
 from graybox.data.record import Record
 from graybox.data.report import DataReport
 from graybox.errors import GrayboxError
-from graybox.estimate.fit import FitResult
+from graybox.estimate.result import FitResult
 from graybox.estimate.problem import Experiment, Problem
 from graybox.model.spec import ModelSpec
 from graybox.runs.artifacts import OutputTrace

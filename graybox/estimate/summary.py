@@ -10,7 +10,7 @@ def _fmt(v: float) -> str:
 
 
 def fit_summary(res) -> str:
-    """A least-squares result (:class:`~graybox.estimate.fit.FitResult`) as text: status
+    """A least-squares result (:class:`~graybox.estimate.result.FitResult`) as text: status
     line, the parameter table (estimate, standard error, 95% interval, units, notes), noise
     levels and groups, SSE, log-likelihood and information criteria, the noise-level
     iteration, strong correlations (|r| > 0.95) and warnings."""
