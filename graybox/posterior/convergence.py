@@ -45,6 +45,7 @@ class Check:
 
     @property
     def converged(self) -> bool:
+        """Whether every criterion of the stop rule holds."""
         return self.long_enough and self.tau_stable and self.rhat_ok and self.ess_ok
 
     @property
@@ -53,6 +54,7 @@ class Check:
         return np.minimum(np.minimum(self.ess, self.ess_tail), self.ess_ci95)
 
     def failed(self, st: SamplerSettings) -> list[str]:
+        """The criteria not met, in words (for the "not converged" reason)."""
         out = []
         if not np.all(np.isfinite(self.tau)):
             out.append("the autocorrelation time could not be estimated (a walker has not moved)")
@@ -82,6 +84,7 @@ class Check:
         return out
 
     def to_dict(self) -> dict:
+        """The check as recorded in results.json ``sampler.checks``."""
         k = worst(self.tau_change / self.tau_tol)
         return {"steps": self.steps, "burn_in": self.burn_in, "tau_max": finite_or_none(np.max(self.tau)),
                 "tau_change": finite_or_none(self.tau_change[k]), "tau_bound": finite_or_none(self.tau_tol[k]),
@@ -102,6 +105,7 @@ def extreme(values: np.ndarray, pick) -> float | None:
 
 
 def finite_or_none(v) -> float | None:
+    """``v`` as a float, None when not finite (JSON has no NaN)."""
     v = float(v)
     return v if math.isfinite(v) else None
 

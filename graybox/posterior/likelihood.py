@@ -44,14 +44,17 @@ class LogPosterior:
 
     @property
     def n_free(self) -> int:
+        """The number of free values (the least-squares layout)."""
         return len(self.priors)
 
     @property
     def n_dim(self) -> int:
+        """The number of sampled quantities: free values, then noise parameters."""
         return self.n_free + len(self.layout.params)
 
     @property
     def names(self) -> list[str]:
+        """The names of the sampled quantities, in column order."""
         return [p.name for p in self.priors] + [p.name for p in self.layout.params]
 
     # -- transforms --------------------------------------------------------------------------

@@ -84,18 +84,22 @@ class PosteriorResult:
     # -- shapes ---------------------------------------------------------------------------------
     @property
     def n_walkers(self) -> int:
+        """The walker count."""
         return int(self.chain.shape[0])
 
     @property
     def n_steps(self) -> int:
+        """The steps run."""
         return int(self.chain.shape[1])
 
     @property
     def free_names(self) -> list[str]:
+        """The names of the free values."""
         return self.names[: self.n_free]
 
     @property
     def noise_names(self) -> list[str]:
+        """The names of the sampled noise parameters."""
         return self.names[self.n_free:]
 
     def post_burn(self) -> np.ndarray:
@@ -116,6 +120,7 @@ class PosteriorResult:
         return rows if include_noise else rows[:, : self.n_free]
 
     def median(self) -> np.ndarray:
+        """The post-burn-in median of every quantity (natural units)."""
         return np.median(self.post_burn().reshape(-1, self.chain.shape[2]), axis=0)
 
     # -- reporting ------------------------------------------------------------------------------
@@ -142,6 +147,8 @@ class PosteriorResult:
         return out
 
     def sampler_dict(self) -> dict:
+        """results.json ``sampler``: settings, steps, burn-in and thinning, tau, acceptance, the
+        stop rule's criteria and checks, start, seed and reproducibility, evaluations, warnings."""
         return {
             "method": "emcee EnsembleSampler, vectorized over half-ensembles",
             "moves": self.settings.moves,
@@ -178,6 +185,8 @@ class PosteriorResult:
         }
 
     def summary(self) -> str:
+        """The text the command line prints: status, per quantity the median and the 95% credible
+        interval with their Monte Carlo standard errors, ESS and R-hat; priors, noise model, warnings."""
         status = "converged" if self.converged else "NOT CONVERGED"
         lines = [f"posterior ({status}): {self.n_walkers} walkers x {self.n_steps} steps, burn-in {self.burn_in}, "
                  f"thin {self.thin}, acceptance {np.mean(self.acceptance):.2f}, {self.wall_s:.1f} s"]
@@ -225,6 +234,7 @@ class PosteriorResult:
         )
 
     def write_plots(self, folder: str | Path) -> list[Path]:
+        """corner.png and trace.png in ``folder``; their paths."""
         from graybox.posterior.plots import corner_plot, trace_plot
 
         folder = Path(folder)

@@ -49,6 +49,7 @@ SEED_STREAM = 0x706F7374  # separates the sampler's stream from other uses of th
 
 
 def check_walkers(n_walkers: int, n_dim: int) -> None:
+    """Refuse an odd walker count or fewer than two walkers per sampled quantity."""
     if n_walkers % 2:
         raise SampleError(f"the walker count must be even (the ensemble moves in two halves), got {n_walkers}",
                           hint="set [sampling] walkers to an even number")
@@ -118,6 +119,7 @@ class BatchEvaluator:
         return np.concatenate(list(self._pool.map(self.post, blocks)))
 
     def close(self) -> None:
+        """Shut the thread pool down."""
         if self._pool is not None:
             self._pool.shutdown(wait=True)
 
