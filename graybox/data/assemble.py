@@ -7,7 +7,7 @@ The order of work:
    one :class:`~graybox.data.tags.Chunk` per tag and file;
 2. time stamps resolved per file in recorded order (see timestamps.py); rows whose wall time
    does not exist are flagged, and each clock change met is reported; the experiment's start
-   (timestamps.experiment_start);
+   (time_axis.experiment_start);
 3. each tag judged on its own (tags.py: windows, start, sorting, duplicates, quality, valid
    range, stuck runs, held repeats, units, spikes, gaps) into a
    :class:`~graybox.data.tags.TagData`;
@@ -41,8 +41,8 @@ from graybox.data.readers import QualityVocab, RawTable, file_sha256, read_table
 from graybox.data.record import InputSeries, OutputSeries, Record, Segment
 from graybox.data.report import DataReport, SegmentReport, TagReport, duration_text
 from graybox.data.tags import Chunk, TagData, gaps_between, iso, process_tag
-from graybox.data.timestamps import (NAT, ClockChange, Place, describe_instant, experiment_start, first_stamp,
-                                     parse_stamps, require_time_axis)
+from graybox.data.time_axis import describe_instant, experiment_start, first_stamp, require_time_axis
+from graybox.data.timestamps import NAT, ClockChange, Place, parse_stamps
 from graybox.data.units import tag_conversion
 from graybox.errors import DataError
 

@@ -219,15 +219,16 @@ def _short(iso: str | None) -> str:
     return iso.replace("+00:00", "Z").replace(":00Z", "Z")
 
 
-def duration_text(seconds: float | None) -> str:
-    """A duration for a reader: seconds, minutes, hours or days, three significant digits."""
+def duration_text(seconds: float | None, digits: int = 3) -> str:
+    """A duration for a reader: seconds, minutes, hours or days (from two of the larger unit
+    on), ``digits`` significant digits; ``-`` for None."""
     if seconds is None:
         return "-"
     s = float(seconds)
     if s >= 86400 * 2:
-        return f"{s / 86400:.3g} d"
+        return f"{s / 86400:.{digits}g} d"
     if s >= 3600 * 2:
-        return f"{s / 3600:.3g} h"
+        return f"{s / 3600:.{digits}g} h"
     if s >= 120:
-        return f"{s / 60:.3g} min"
-    return f"{s:.3g} s"
+        return f"{s / 60:.{digits}g} min"
+    return f"{s:.{digits}g} s"

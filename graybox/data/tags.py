@@ -31,7 +31,7 @@ from graybox.data.quality import (REASON_INF, REASON_NAN, REASON_NONEXISTENT, RE
                                   REASON_SPIKE, REASON_STUCK, StuckRule, bad_quality, count_first_reasons,
                                   held_repeats, out_of_range, repeat_share, spikes, stuck_rule, stuck_runs)
 from graybox.data.readers import Rows, row_at
-from graybox.data.timestamps import backward_steps
+from graybox.data.time_axis import backward_steps
 from graybox.data.units import Conversion
 
 

@@ -15,11 +15,11 @@
   instant: elapsed zero is put at 1970-01-01T00:00Z, and reports print elapsed times.
 
 The time axis is declared, never guessed.  A model with states needs a time column
-(:func:`require_time_axis`); only a static model may take a table's rows in order.  An
-experiment starts at its declared ``start`` or else at the first time stamp of its data, a
-row without any value included (a batch record's ``0,,,`` row says when it started); a
-selected window that opens later moves the start to its opening (:func:`experiment_start`).
-The initial state applies at that start.
+(:func:`graybox.data.time_axis.require_time_axis`); only a static model may take a table's
+rows in order.  An experiment starts at its declared ``start`` or else at the first time
+stamp of its data, a row without any value included (a batch record's ``0,,,`` row says
+when it started); a selected window that opens later moves the start to its opening
+(:func:`graybox.data.time_axis.experiment_start`).  The initial state applies at that start.
 
 Wall-clock times are resolved in *recorded order*, before any sorting: in the hour that a
 fall-back change repeats, the first pass through the hour is summer time and a stamp not
@@ -33,15 +33,14 @@ is resolved there, so nothing is reported.)
 
 from __future__ import annotations
 
-import re
 from dataclasses import dataclass, replace
-from datetime import datetime, timedelta, timezone
+from datetime import datetime, timezone
 
 import numpy as np
 import pandas as pd
 
 from graybox.data.columns import arrow_text as _arrow_text, regex_matches, text_codes, text_runs
-from graybox.data.config import ELAPSED, TimeSpec, table_from_where
+from graybox.data.config import ELAPSED, TimeSpec
 from graybox.errors import DataError
 
 NAT = np.iinfo(np.int64).min
@@ -572,92 +571,3 @@ def _second_pass(wall: np.ndarray, groups: np.ndarray | None) -> np.ndarray:
     out = np.zeros(n, bool)
     out[order] = passed
     return out
-
-
-# -- the time axis of an experiment ------------------------------------------------------------
-def require_time_axis(spec, dynamic: bool) -> None:
-    """A model with states is simulated in time: its data must say when each row was taken.
-    A static model (no states) may take the rows in their order (0, 1, 2, ... s)."""
-    if dynamic and spec.time.column is None:
-        raise DataError("the model has states, but the data table names no time column: its rows have no times to "
-                        "simulate on", where=table_from_where({}, spec.where).where("time_column"),
-                        hint="add time_column = \"...\" (the column of time stamps) with its time_format; for time "
-                             "since the start of a run, time_format = \"elapsed\" and time_units = \"min\"")
-
-
-START_DECLARED = "the declared start"
-START_DATA = "the first time stamp of the data"
-START_SELECT = "the opening of the selected window"
-
-
-def experiment_start(declared: int | None, first_stamp: int | None,
-                     select: tuple[tuple[int, int], ...] = ()) -> tuple[int | None, str]:
-    """Where the experiment starts (ns) and what set it: the declared ``start``, else the first
-    time stamp of the data (any row, with or without values); a selected window opening later
-    (the first one still open then) moves it to its opening."""
-    start, why = (declared, START_DECLARED) if declared is not None else (first_stamp, START_DATA)
-    if start is None:
-        return None, ""
-    for lo, hi in sorted(select):
-        if hi > start:
-            if lo > start:
-                return int(lo), START_SELECT
-            break
-    return int(start), why
-
-
-def first_stamp(times: list[np.ndarray], gaps: list[np.ndarray | None]) -> int | None:
-    """The earliest existing time stamp among arrays of UTC ns (``gaps``: rows whose wall time
-    does not exist, or None when none did)."""
-    best = None
-    for t, g in zip(times, gaps):
-        ok = t if g is None else t[~g]
-        if ok.size:
-            m = int(ok.min())
-            best = m if best is None else min(best, m)
-    return best
-
-
-def backward_steps(t: np.ndarray, file_starts: np.ndarray | None = None) -> tuple[int, int | None]:
-    """How many rows are stamped earlier than the row before them (stamps in recorded order;
-    the first row of each file, at positions ``file_starts``, is not compared with the last
-    of the file before: files may be listed in any order), and the position of the first."""
-    if t.size < 2:
-        return 0, None
-    back = t[1:] < t[:-1]
-    if file_starts is not None and file_starts.size:
-        inner = file_starts[(file_starts > 0) & (file_starts < t.size)]
-        back[inner - 1] = False
-    n = int(np.count_nonzero(back))
-    return n, (int(np.argmax(back)) + 1 if n else None)
-
-
-def describe_instant(ns: int | None, spec: TimeSpec, start: int | None = None) -> str:
-    """An instant as a reader wants it: ISO 8601 UTC, or the elapsed time in the table's units;
-    with ``start``, its offset from the start too."""
-    if ns is None:
-        return "-"
-    if spec.format == ELAPSED:
-        text = f"{ns / 1e9 / spec.seconds_per_unit:g} {spec.units}"
-    else:
-        text = np.datetime64(int(ns), "ns").astype("datetime64[s]").astype(str) + "Z"
-        if ns % 10**9:
-            text = np.datetime64(int(ns), "ns").astype("datetime64[ms]").astype(str) + "Z"
-    if start is not None and ns != start:
-        d = (ns - start) / 1e9
-        text += f" (start {'+' if d >= 0 else '-'} {_span_text(abs(d), spec)})"
-    elif start is not None:
-        text += " (at the start)"
-    return text
-
-
-def _span_text(seconds: float, spec: TimeSpec) -> str:
-    if spec.format == ELAPSED:
-        return f"{seconds / spec.seconds_per_unit:g} {spec.units}"
-    if seconds >= 2 * 86400:
-        return f"{seconds / 86400:.4g} d"
-    if seconds >= 2 * 3600:
-        return f"{seconds / 3600:.4g} h"
-    if seconds >= 120:
-        return f"{seconds / 60:.4g} min"
-    return f"{seconds:.4g} s"

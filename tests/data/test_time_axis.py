@@ -10,7 +10,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from graybox.data.timestamps import START_DATA, START_DECLARED, START_SELECT
+from graybox.data.time_axis import START_DATA, START_DECLARED, START_SELECT
 from graybox.errors import ConfigError, DataError
 from graybox.workflow import check_study, fit_study
 
