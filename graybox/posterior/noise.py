@@ -31,7 +31,9 @@ import numpy as np
 
 from graybox.configkit import Table
 from graybox.errors import SampleError
-from graybox.posterior.noise_kinds import DEFAULT_KIND, NOISE_KINDS, NOISE_OPTIONS, REGISTRY, NoiseKind, noise_kind, option_owner
+from graybox.posterior.noise_kinds import (DEFAULT_KIND, NOISE_KINDS, NOISE_OPTIONS, REGISTRY, NoiseKind, noise_kind,
+                                           option_owner)
+# re-exported: the likelihoods and the AR(1) spacing plan, for callers of this module
 from graybox.posterior.noise_kinds.ar1 import GAP_FACTOR, SpacingPlan, innovations, loglik_ar1, spacing_plan
 from graybox.posterior.noise_kinds.base import NoiseParam, option_error
 from graybox.posterior.noise_kinds.gaussian import loglik_gaussian
@@ -209,6 +211,6 @@ def noise_layout(noise: dict, problem, file: Path | None = None) -> NoiseLayout:
     return NoiseLayout(tuple(models), tuple(noise_params(models)), spacing)
 
 
-__all__ = ["DEFAULT_KIND", "GAP_FACTOR", "NOISE_KINDS", "NOISE_OPTIONS", "NoiseLayout", "NoiseModel", "NoiseParam", "SpacingPlan",
-           "innovations", "loglik_ar1", "loglik_gaussian", "loglik_student", "noise_layout", "noise_models",
-           "noise_params", "simulate_errors", "spacing_plan"]
+__all__ = ["DEFAULT_KIND", "GAP_FACTOR", "NOISE_KINDS", "NOISE_OPTIONS", "NoiseLayout", "NoiseModel", "NoiseParam",
+           "SpacingPlan", "innovations", "loglik_ar1", "loglik_gaussian", "loglik_student", "noise_layout",
+           "noise_models", "noise_params", "simulate_errors", "spacing_plan"]

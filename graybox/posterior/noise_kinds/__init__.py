@@ -29,4 +29,5 @@ def option_owner(key: str) -> str | None:
     return next((k.name for k in REGISTRY.values() if key in k.options), None)
 
 
-__all__ = ["DEFAULT_KIND", "NOISE_KINDS", "NOISE_OPTIONS", "REGISTRY", "NoiseKind", "NoiseParam", "noise_kind", "option_owner"]
+__all__ = ["DEFAULT_KIND", "NOISE_KINDS", "NOISE_OPTIONS", "REGISTRY", "NoiseKind", "NoiseParam", "noise_kind",
+           "option_owner"]
