@@ -17,7 +17,7 @@ from typing import Callable
 
 import numpy as np
 
-from graybox.data.config import DataSpec
+from graybox.data.spec import DataSpec
 from graybox.data.record import Record
 from graybox.data.report import DataReport
 from graybox.errors import GrayboxError

@@ -20,7 +20,8 @@ from typing import Any, Mapping
 
 from graybox.config import StudySettings, read_study, settings_from_raw
 from graybox.configkit import Table
-from graybox.data.config import DataSpec, SymbolInfo, parse_data_table
+from graybox.data.config import parse_data_table
+from graybox.data.spec import DataSpec, SymbolInfo
 from graybox.data.time_axis import require_time_axis
 from graybox.errors import ConfigError
 from graybox.model.spec import ModelSpec

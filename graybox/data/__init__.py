@@ -19,7 +19,7 @@ from graybox.data.record import (  # noqa: F401
     Segment,
     record_from_arrays,
 )
-from graybox.data.config import SymbolInfo  # noqa: F401
+from graybox.data.spec import SymbolInfo  # noqa: F401
 from graybox.data.report import DataReport, SegmentReport, TagReport  # noqa: F401
 from graybox.data.assemble import check_experiment, check_spec, load_experiment, load_spec  # noqa: F401
 from graybox.data.split import split_record  # noqa: F401

@@ -35,11 +35,12 @@ from typing import Mapping
 
 import numpy as np
 
-from graybox.data.config import ROLE_INPUT, DataSpec, SymbolInfo, TagSpec, parse_data_table
+from graybox.data.config import parse_data_table
 from graybox.data.gaps import gap_dict, gap_warning, silence_dict, silence_warning
 from graybox.data.readers import QualityVocab, RawTable, file_sha256, read_table, row_count, take_rows
 from graybox.data.record import InputSeries, OutputSeries, Record, Segment
 from graybox.data.report import DataReport, SegmentReport, TagReport, duration_text
+from graybox.data.spec import ROLE_INPUT, DataSpec, SymbolInfo, TagSpec
 from graybox.data.tags import Chunk, TagData, gaps_between, iso, process_tag
 from graybox.data.time_axis import describe_instant, experiment_start, first_stamp, require_time_axis
 from graybox.data.timestamps import NAT, ClockChange, Place, parse_stamps

@@ -50,7 +50,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from graybox.data.config import (AUTO_GAP_EXCEPTION_FLOOR_S, AUTO_GAP_FLOOR_S, AUTO_GAP_INTERVALS, GAP_AUTO,
-                                 ROLE_INPUT, SILENCE_FENCE_IQR, SILENCE_FLOOR_S, DataSpec, TagSpec)
+                                 SILENCE_FENCE_IQR, SILENCE_FLOOR_S)
+from graybox.data.spec import ROLE_INPUT, DataSpec, TagSpec
 from graybox.data.report import duration_text as _dur
 
 ACTION_SPLIT = "the record is split into segments there"

@@ -46,7 +46,8 @@ import numpy as np
 import pandas as pd
 
 from graybox.data.config import (AUTO_STUCK_CAP_S, AUTO_STUCK_FLOOR_S, AUTO_STUCK_INTERVALS, AUTO_STUCK_REPEAT_SHARE,
-                                 ROLE_OUTPUT, STUCK_AUTO)
+                                 STUCK_AUTO)
+from graybox.data.spec import ROLE_OUTPUT
 from graybox.data.report import duration_text as _dur
 
 REASON_NONEXISTENT = "nonexistent time (clocks went forward)"

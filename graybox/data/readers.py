@@ -23,7 +23,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from graybox.data.config import ReadOptions
+from graybox.data.spec import ReadOptions
 from graybox.data.frames import FRAME_WORD, FrameSource, blank_texts, frame_columns
 from graybox.errors import DataError
 

@@ -24,13 +24,14 @@ from datetime import datetime, timezone
 
 import numpy as np
 
-from graybox.data.config import STUCK_AUTO, DataSpec, TagSpec
+from graybox.data.config import STUCK_AUTO
 from graybox.data.gaps import (NO_SILENCE_RULE, Gap, GapRule, SilenceRule, gap_rule, gaps_over, silence_rule,
                                silences_within)
 from graybox.data.quality import (REASON_INF, REASON_NAN, REASON_NONEXISTENT, REASON_QUALITY, REASON_RANGE,
                                   REASON_SPIKE, REASON_STUCK, StuckRule, bad_quality, count_first_reasons,
                                   held_repeats, out_of_range, repeat_share, spikes, stuck_rule, stuck_runs)
 from graybox.data.readers import Rows, row_at
+from graybox.data.spec import DataSpec, TagSpec
 from graybox.data.time_axis import backward_steps
 from graybox.data.units import Conversion
 

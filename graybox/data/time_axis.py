@@ -10,8 +10,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from graybox.data.config import ELAPSED, TimeSpec, table_from_where
+from graybox.data.config import ELAPSED, table_from_where
 from graybox.data.report import duration_text
+from graybox.data.spec import TimeSpec
 from graybox.errors import DataError
 
 

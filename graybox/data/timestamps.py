@@ -40,7 +40,8 @@ import numpy as np
 import pandas as pd
 
 from graybox.data.columns import arrow_text as _arrow_text, regex_matches, text_codes, text_runs
-from graybox.data.config import ELAPSED, TimeSpec
+from graybox.data.config import ELAPSED
+from graybox.data.spec import TimeSpec
 from graybox.errors import DataError
 
 NAT = np.iinfo(np.int64).min

@@ -190,7 +190,7 @@ class WindowPlan:
 def window_plan(search, record: Record) -> WindowPlan:
     """The one rule for the informative-window settings of a record, used by both
     `graybox check` and `graybox fit`: the experiment's ``[informative]`` table (``search``,
-    a ``graybox.data.config.SearchSpec``) if it has one, with that table's documented
+    a ``graybox.data.spec.SearchSpec``) if it has one, with that table's documented
     defaults for the keys it leaves out; without one, windows of the table's default length
     (1 day), or of half the record when it is shorter than two of them (a short record still
     has windows to compare), a quarter window apart, the best ``DEFAULT_TOP``, every output

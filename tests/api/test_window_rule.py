@@ -17,7 +17,7 @@ import pytest
 
 import graybox
 from graybox.data import InputSeries, OutputSeries, Record
-from graybox.data.config import SearchSpec
+from graybox.data.spec import SearchSpec
 from graybox.data.windows import window_plan
 
 ROOT = Path(__file__).resolve().parents[2]

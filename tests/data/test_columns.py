@@ -199,7 +199,7 @@ def test_periodic_long_file_reads_like_a_shuffled_one(tmp_path):
     # the same samples in a cycling long table (fast path) and with its rows shuffled within
     # each stamp (general path) give identical tag data; reference: the general path itself
     from graybox.data.readers import read_table, row_positions
-    from graybox.data.config import ReadOptions
+    from graybox.data.spec import ReadOptions
 
     rng = np.random.default_rng(3)
     n, tags = 3000, ["A_1", "B_22", "C_333"]

@@ -13,7 +13,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from graybox.data.config import TimeSpec
+from graybox.data.spec import TimeSpec
 from graybox.data.quality import REASON_NONEXISTENT
 from graybox.data.timestamps import NAT, Place, localize, parse_stamps
 
