@@ -27,7 +27,7 @@ import numpy as np
 
 from graybox.configkit import Table
 from graybox.errors import ConfigError, SampleError
-from graybox.posterior.priors import KIND_FLAT, KIND_UNIFORM, PRIOR_KEYS, PRIOR_KINDS, Prior, prior_kind
+from graybox.posterior.priors import KIND_FLAT, KIND_UNIFORM, Prior, prior_kind, written_kinds
 
 SAMPLING_KEYS = ("enabled", "walkers", "max_steps", "check_every", "seed", "min_ess", "rhat_max", "tau_factor",
                  "band_draws", "progress", "moves")
@@ -179,17 +179,18 @@ def expand_priors(base: dict[str, Prior], spec, problem) -> list[Prior]:
 def _prior_of(p, file: Path | None, proper: bool = True) -> Prior:
     t = Table(dict(p.prior) if p.prior is not None else {}, ("parameters", p.name, "prior"), file)
     try:
-        kind = t.string("kind", KIND_UNIFORM, PRIOR_KINDS)
-        t.check_keys(("kind", *PRIOR_KEYS[kind]))
-        values = {k: t.number(k) for k in PRIOR_KEYS[kind]}
+        kind = t.string("kind", KIND_UNIFORM, written_kinds())
+        family = prior_kind(kind)
+        t.check_keys(("kind", *family.keys))
+        values = {k: t.number(k) for k in family.keys}
     except ConfigError as exc:
         raise SampleError(exc.message, where=exc.where, hint=exc.hint) from None
-    for key in ("sd", "log_sd"):
-        if key in values and not values[key] > 0:
+    for key in family.scales:
+        if not values[key] > 0:
             raise SampleError(f"the prior's {key} must be positive, got {values[key]!r}", where=t.where(key),
                               hint="a scale of a prior is a standard deviation: a positive number")
     lo, hi = float(p.lower), float(p.upper)
-    prior, centre, key = prior_kind(kind).build(p.name, lo, hi, p.log_scale, values, t, proper)
+    prior, centre, key = family.build(p.name, lo, hi, p.log_scale, values, t, proper)
     if centre is None:
         return prior
     s_lo, s_hi = prior.support()

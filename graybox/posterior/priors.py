@@ -46,7 +46,9 @@ class PriorKind(Protocol):
 
     name: str  # the value of ``kind`` in a parameter's prior (or "flat", never written by users)
     keys: tuple[str, ...]  # its keys besides ``kind``
+    scales: tuple[str, ...]  # those of its keys that must be positive (standard deviations)
     shaped: bool  # its density is not constant on its support
+    written: bool  # a study file may name it
 
     def support(self, lo: float, hi: float) -> tuple[float, float]:
         """Where the density is positive, within the bounds [lo, hi]."""
@@ -69,7 +71,7 @@ class PriorKind(Protocol):
 class Uniform:
     """``uniform`` (the default): flat between the bounds, which must be finite."""
 
-    name, keys, shaped = "uniform", (), False
+    name, keys, scales, shaped, written = "uniform", (), (), False, True
 
     def support(self, lo: float, hi: float) -> tuple[float, float]:
         """The bounds."""
@@ -104,7 +106,7 @@ class Flat(Uniform):
     """``flat``: improper flat over infinite bounds (estimated initial states, or a uniform
     prior when sampling is off); never written by users."""
 
-    name = "flat"
+    name, written = "flat", False
 
     def describe(self, p: Prior) -> str:
         """In words."""
@@ -114,7 +116,7 @@ class Flat(Uniform):
 class Normal:
     """``normal``: keys ``mean``, ``sd``."""
 
-    name, keys, shaped = "normal", ("mean", "sd"), True
+    name, keys, scales, shaped, written = "normal", ("mean", "sd"), ("sd",), True, True
 
     def support(self, lo: float, hi: float) -> tuple[float, float]:
         """The bounds."""
@@ -140,7 +142,7 @@ class Normal:
 class LogNormal:
     """``lognormal``: keys ``median``, ``log_sd`` (the standard deviation of ln x), x > 0."""
 
-    name, keys, shaped = "lognormal", ("median", "log_sd"), True
+    name, keys, scales, shaped, written = "lognormal", ("median", "log_sd"), ("log_sd",), True, True
 
     def support(self, lo: float, hi: float) -> tuple[float, float]:
         """The bounds, above zero."""
@@ -171,7 +173,7 @@ class LogNormal:
 class HalfNormal:
     """``halfnormal``: key ``sd``; a normal of mean zero folded onto x >= 0."""
 
-    name, keys, shaped = "halfnormal", ("sd",), True
+    name, keys, scales, shaped, written = "halfnormal", ("sd",), ("sd",), True, True
 
     def support(self, lo: float, hi: float) -> tuple[float, float]:
         """The bounds, from zero."""
@@ -202,13 +204,18 @@ class HalfNormal:
 REGISTRY: dict[str, PriorKind] = {k.name: k for k in (Uniform(), Normal(), LogNormal(), HalfNormal(), Flat())}
 KIND_UNIFORM = Uniform.name
 KIND_FLAT = Flat.name  # initial states without finite bounds: improper, never written by users
-PRIOR_KINDS = tuple(k.name for k in REGISTRY.values() if k.name != KIND_FLAT)  # what a study file may name
+PRIOR_KINDS = tuple(k.name for k in REGISTRY.values() if k.written)  # what a study file may name
 PRIOR_KEYS = {name: REGISTRY[name].keys for name in PRIOR_KINDS}
 
 
 def prior_kind(name: str) -> PriorKind:
     """The registered prior kind called ``name`` (validated names only)."""
     return REGISTRY[name]
+
+
+def written_kinds() -> tuple[str, ...]:
+    """The prior kinds a study file may name, in registry order (read at each call)."""
+    return tuple(k.name for k in REGISTRY.values() if k.written)
 
 
 @dataclass(frozen=True)
