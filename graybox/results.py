@@ -272,7 +272,7 @@ def sample(fitted: StudyFit, *, walkers: int | None = None, max_steps: int | Non
     settings = sampler_for(study, options)
     priors = proper_priors(fitted)
     problem = fitted.prepared.problem
-    post = run_posterior(problem, fitted.estimate, study.noise, settings, study.seed, priors=priors, file=study.path)
+    post = run_posterior(problem, fitted.estimate, study.noise_models, settings, study.seed, priors=priors, file=study.path)
     echo(post.summary())
     rng = np.random.default_rng(np.random.SeedSequence([study.seed, BAND_STREAM]))
     bands = predictive_bands(problem, post, settings.band_draws, rng)

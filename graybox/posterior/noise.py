@@ -204,8 +204,16 @@ class NoiseLayout:
 
 
 def noise_layout(noise: dict, problem, file: Path | None = None) -> NoiseLayout:
-    """The noise layout of a problem from ``study.noise`` (output -> NoiseSpec)."""
-    models = noise_models(noise, problem.spec.output_names, file)
+    """The noise layout of a problem: ``noise`` is either the study's validated noise models
+    (a sequence of :class:`NoiseModel`, one per measured output, as ``Study.noise_models``
+    holds them: used as they are, not validated again) or ``study.noise`` (output ->
+    NoiseSpec), validated here."""
+    if isinstance(noise, (list, tuple)):
+        models = list(noise)
+        if [m.output for m in models] != list(problem.spec.output_names):
+            raise ValueError("noise models must be given for every measured output, in the model's order")
+    else:
+        models = noise_models(noise, problem.spec.output_names, file)
     plans = {m.output: m.family.plan(problem, m.output) for m in models}
     spacing = {o: plan for o, plan in plans.items() if plan is not None}
     return NoiseLayout(tuple(models), tuple(noise_params(models)), spacing)

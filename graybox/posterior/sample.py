@@ -124,10 +124,12 @@ class BatchEvaluator:
             self._pool.shutdown(wait=True)
 
 
-def run_posterior(problem: Problem, fit_result: FitResult, noise: dict, settings: SamplerSettings, seed: int, *,
+def run_posterior(problem: Problem, fit_result: FitResult, noise: dict | tuple, settings: SamplerSettings, seed: int, *,
                   priors: list[Prior] | None = None, file: Path | None = None,
                   _criterion: Callable | None = None, _threads: int | None = None) -> PosteriorResult:
-    """Sample the posterior; ``noise``: output -> NoiseSpec (``study.noise``); ``seed``: the
+    """Sample the posterior; ``noise``: the study's validated noise models
+    (``study.noise_models``, used as they are) or output -> NoiseSpec (``study.noise``,
+    validated here); ``seed``: the
     study's seed, used unless ``settings.seed`` is given; ``file``: the study file, for error
     locations.  Private, for benchmarks/bench_stop_rule.py and the tests: ``_criterion``, a
     replacement for :func:`check_convergence` with its signature; ``_threads``, the thread
