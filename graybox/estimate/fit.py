@@ -52,7 +52,7 @@ from graybox.errors import FitError
 from graybox.estimate.noise_levels import (CONVERGED_STEP, REWEIGHT_SETTLED, ConcentratedLikelihood, gaussian_loglik,
                                            ml_sigmas, needs_reweighting, rows_by_output, sigma_groups,
                                            stationary_point)
-from graybox.estimate.point import EPS, NEGLIGIBLE_STEP, Point, evaluate, step_in_standard_errors
+from graybox.estimate.point import EPS, Point, evaluate, step_in_standard_errors
 from graybox.estimate.problem import Problem
 from graybox.estimate.result import FitResult, ParameterEstimate
 

@@ -149,7 +149,7 @@ def priors_from_spec(spec, problem, file: Path | None = None) -> list[Prior]:
 
 def parameter_priors(spec, file: Path | None = None, *, proper: bool = True) -> dict[str, Prior]:
     """The prior of every free parameter (by name), from the study file alone: what
-    ``graybox.config.load_study`` checks before any data is read.
+    ``graybox.load_study`` checks before any data is read.
 
     ``proper``: sampling will run, so a uniform prior (the default) needs finite bounds.
     Without it (sampling off) such a prior is recorded as flat (improper) instead of refused;

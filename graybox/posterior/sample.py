@@ -34,7 +34,7 @@ import emcee
 import numpy as np
 
 from graybox.errors import SampleError
-from graybox.estimate.fit import FitResult
+from graybox.estimate.result import FitResult
 from graybox.estimate.problem import Problem
 from graybox.posterior.checks import residual_checks
 from graybox.posterior.config import SamplerSettings, priors_from_spec

@@ -18,7 +18,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from graybox.errors import SampleError
-from graybox.estimate.fit import FitResult
+from graybox.estimate.result import FitResult
 from graybox.posterior.likelihood import LogPosterior
 
 START_SCALE = 0.1  # ball radius in least-squares standard deviations
