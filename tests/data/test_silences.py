@@ -33,7 +33,7 @@ from graybox.data import SymbolInfo
 from graybox.data.gaps import ACTION_HELD, ACTION_SPLIT
 
 from . import messy_export as mx
-from .util import load
+from .util import drained_tank_study, load
 
 T0 = pd.Timestamp("2026-04-13T00:00Z")
 AREA_M2, C_TRUE = 3.0, 0.003
@@ -216,50 +216,10 @@ def test_random_changes_reported_at_the_closed_form_rate(tmp_path):
 
 
 # -- through `graybox check` and `graybox fit` ---------------------------------------------------
-STUDY = """
-[study]
-name = "rinse_tank"
-seed = 3
-
-[model]
-name = "rinse_hold_tank"
-
-[model.states.h]
-units = "m"
-rate = "(q - c*sqrt(h))/A"
-initial = "measured"
-
-[model.inputs]
-q = "m**3/s"
-
-[model.constants]
-A = { value = 3.0, units = "m**2" }
-
-[parameters.c]
-guess = 0.01
-bounds = [1e-5, 1.0]
-units = "m**2.5/s"
-
-[model.outputs.level]
-expr = "h"
-
-[data]
-files = ["rinse_tank.csv"]
-time_column = "time"
-
-[data.tags.q]
-tag = "FT-31"
-units = "m**3/h"
-logging = "exception"
-%s
-
-[data.tags.level]
-tag = "LT-32"
-units = "m"
-
-[noise.level]
-sigma = "estimate"
-"""
+def study(q_extra: str = "") -> str:
+    """The rinse tank's study file; ``q_extra``: more keys of the inflow tag."""
+    return drained_tank_study(name="rinse_tank", model="rinse_hold_tank", seed=3, area=3.0, csv="rinse_tank.csv",
+                              q_tag="FT-31", level_tag="LT-32", q_extra='logging = "exception"\n' + q_extra)
 
 
 def test_check_and_fit_report_the_silence_and_following_it_repairs_the_fit(tmp_path):
@@ -270,7 +230,7 @@ def test_check_and_fit_report_the_silence_and_following_it_repairs_the_fit(tmp_p
     from graybox.workflow import check_study, fit_study
 
     write_tank(tmp_path)
-    (tmp_path / "study.toml").write_text(STUDY % "")
+    (tmp_path / "study.toml").write_text(study())
     said_check: list[str] = []
     assert check_study(tmp_path / "study.toml", echo=said_check.append, sample=False) == 0
     said_fit: list[str] = []
@@ -281,7 +241,7 @@ def test_check_and_fit_report_the_silence_and_following_it_repairs_the_fit(tmp_p
     saved = json.loads((tmp_path / "run0" / "results.json").read_text())["data"]["main"]
     assert len(saved["tags"][0]["silences"]) == 1 and any("long against its rhythm" in w for w in saved["warnings"])
     suggested = re.search(r'max_gap = "([^"]+)"', warned[0]).group(1)
-    (tmp_path / "study.toml").write_text(STUDY % f'max_gap = "{suggested}"')
+    (tmp_path / "study.toml").write_text(study(f'max_gap = "{suggested}"'))
     split = fit_study(tmp_path / "study.toml", tmp_path / "run1", echo=lambda _: None, sample=False)
     c0, c1 = bridged["parameters"]["c"]["estimate"], split["parameters"]["c"]["estimate"]
     s0, s1 = (json.loads((tmp_path / r / "results.json").read_text()) for r in ("run0", "run1"))

@@ -28,7 +28,7 @@ from graybox.data import SymbolInfo
 from graybox.data.quality import REASON_STUCK
 
 from .test_quality import _stuck_by_hand
-from .util import load
+from .util import drained_tank_study, load
 
 T0 = pd.Timestamp("2026-06-01T00:00Z")
 AREA_M2, C_TRUE, NOISE_M = 2.0, 0.002, 0.003
@@ -237,49 +237,10 @@ def test_a_tag_logged_by_exception_keeps_two_hours(tmp_path):
 
 
 # -- the fit ---------------------------------------------------------------------------------------
-STUDY = """
-[study]
-name = "glycol_vessel"
-seed = 5
-
-[model]
-name = "expansion_vessel"
-
-[model.states.h]
-units = "m"
-rate = "(q - c*sqrt(h))/A"
-initial = "measured"
-
-[model.inputs]
-q = "m**3/s"
-
-[model.constants]
-A = { value = 2.0, units = "m**2" }
-
-[parameters.c]
-guess = 0.01
-bounds = [1e-5, 1.0]
-units = "m**2.5/s"
-
-[model.outputs.level]
-expr = "h"
-
-[data]
-files = ["vessel.csv"]
-time_column = "time"
-%s
-
-[data.tags.q]
-tag = "FT-6"
-units = "m**3/h"
-
-[data.tags.level]
-tag = "LT-7"
-units = "m"
-
-[noise.level]
-sigma = "estimate"
-"""
+def study(data_extra: str = "") -> str:
+    """The glycol vessel's study file; ``data_extra``: more keys of its [data] table."""
+    return drained_tank_study(name="glycol_vessel", model="expansion_vessel", seed=5, area=2.0, csv="vessel.csv",
+                              q_tag="FT-6", level_tag="LT-7", data_extra=data_extra)
 
 
 def test_masking_the_flagged_freeze_repairs_the_fit(tmp_path):
@@ -292,7 +253,7 @@ def test_masking_the_flagged_freeze_repairs_the_fit(tmp_path):
     write_vessel(tmp_path)
     out = {}
     for name, extra in (("kept", ""), ("masked", 'stuck_action = "mask"')):
-        (tmp_path / "study.toml").write_text(STUDY % extra)
+        (tmp_path / "study.toml").write_text(study(extra))
         doc = fit_study(tmp_path / "study.toml", tmp_path / name, echo=lambda _: None, sample=False)
         out[name] = doc["parameters"]["c"]["estimate"], doc["noise"]["level"]["sigma"]
     (c0, s0), (c1, s1) = out["kept"], out["masked"]
